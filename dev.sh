@@ -1,0 +1,63 @@
+#!/usr/bin/env bash
+# Set up and run, on a fresh Debian machine with Python 3.11 (no GPU needed).
+#   ./dev.sh demo   install, then run the demo scenario end to end
+#   ./dev.sh test   install with the test extras, then run the whole test suite
+#   ./dev.sh bench  install, then run the benchmarks under tests/benchmarks/
+# The virtual environment lives in .venv (override with UNMIX_VENV).
+set -euo pipefail
+cd "$(dirname "$0")"
+task=${1:-}
+venv=${UNMIX_VENV:-.venv}
+
+python=""
+for candidate in python3.11 python3; do
+    if command -v "$candidate" >/dev/null 2>&1; then python=$candidate; break; fi
+done
+if [ -z "$python" ] || ! "$python" -c 'import venv, ensurepip' >/dev/null 2>&1; then
+    # Debian splits venv/ensurepip out of the interpreter package.
+    if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
+        apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq python3 python3-venv python3-pip >/dev/null
+        python=${python:-python3}
+    else
+        echo "error: need Python 3.11 with the venv module (Debian: apt-get install python3-venv)" >&2
+        exit 2
+    fi
+fi
+
+setup() {
+    if [ ! -x "$venv/bin/python" ]; then
+        "$python" -m venv "$venv"
+    fi
+    "$venv/bin/python" -m pip install --quiet --upgrade pip
+    "$venv/bin/python" -m pip install --quiet -e ".$1"
+}
+
+case "$task" in
+    demo)
+        setup ""
+        "$venv/bin/unmix" demo -o "${2:-unmix-demo}"
+        ;;
+    test)
+        setup "[test]"
+        shift
+        set +e
+        "$venv/bin/python" -m pytest "$@"
+        status=$?
+        set -e
+        if [ "$status" = 5 ]; then
+            echo "error: pytest collected no tests" >&2
+            exit 1
+        fi
+        exit "$status"
+        ;;
+    bench)
+        setup "[test]"
+        for script in tests/benchmarks/bench_*.py; do
+            "$venv/bin/python" "$script"
+        done
+        ;;
+    *)
+        echo "usage: ./dev.sh demo|test|bench" >&2
+        exit 2
+        ;;
+esac

@@ -1,0 +1,135 @@
+"""Image I/O checked against the reference readers and writers (tifffile, ome-zarr)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import tifffile
+
+from unmix.errors import InputError
+from unmix.images import Image, read_image, read_images, read_provenance, write_ome_tiff, write_ome_zarr
+
+
+@pytest.fixture
+def stack():
+    rng = np.random.default_rng(1)
+    return rng.integers(0, 4096, size=(2, 3, 24, 32), dtype=np.uint16)  # Z C Y X
+
+
+def test_ome_tiff_round_trip_matches_tifffile(tmp_path, stack):
+    # Reference: tifffile's own reader returns the same pixels in the stored order.
+    image = Image(np.moveaxis(stack, 1, 0), "CZYX", ("a", "b", "c"), {"X": 0.1, "Y": 0.1, "Z": 0.5})
+    path = write_ome_tiff(tmp_path / "x.ome.tif", image, provenance={"note": "<&>"})
+    back = read_image(path)
+    assert back.axes == "CZYX" and back.channel_names == ("a", "b", "c")
+    assert back.pixel_size == {"X": 0.1, "Y": 0.1, "Z": 0.5}
+    np.testing.assert_array_equal(back.data, image.data)
+    with tifffile.TiffFile(path) as tif:
+        assert tif.is_ome and tif.series[0].axes == "CZYX"
+        np.testing.assert_array_equal(tif.series[0].asarray(), image.data)
+    assert read_provenance(path) == {"note": "<&>"}
+
+
+def test_axes_from_ome_metadata_are_put_in_canonical_order(tmp_path, stack):
+    # Reference: tifffile writes the OME axes ZCYX as given.
+    tifffile.imwrite(tmp_path / "z.ome.tif", stack, ome=True,
+                     metadata={"axes": "ZCYX", "Channel": {"Name": ["p", "q", "r"]}})
+    image = read_image(tmp_path / "z.ome.tif")
+    assert image.axes == "CZYX" and image.channel_names == ("p", "q", "r")
+    np.testing.assert_array_equal(image.data, np.moveaxis(stack, 1, 0))
+
+
+def test_imagej_hyperstack_axes(tmp_path):
+    # Reference: tifffile's ImageJ writer stores TZCYX hyperstacks.
+    data = np.arange(2 * 3 * 2 * 8 * 9, dtype=np.uint16).reshape(2, 3, 2, 8, 9)
+    tifffile.imwrite(tmp_path / "ij.tif", data, imagej=True, metadata={"axes": "TZCYX"})
+    image = read_image(tmp_path / "ij.tif")
+    assert image.axes == "TCZYX"
+    np.testing.assert_array_equal(image.data, np.moveaxis(data, 2, 1))
+
+
+def test_plain_tiff_rules_and_axes_override(tmp_path, stack):
+    tifffile.imwrite(tmp_path / "c.tif", stack[0], metadata=None)
+    image = read_image(tmp_path / "c.tif")
+    assert image.axes == "CYX" and image.channel_names == ("ch0", "ch1", "ch2")
+    tifffile.imwrite(tmp_path / "four.tif", stack, metadata=None)
+    with pytest.raises(InputError, match="--axes"):
+        read_image(tmp_path / "four.tif")
+    image = read_image(tmp_path / "four.tif", axes="ZCYX", channel_names=["x", "y", "z"])
+    assert image.axes == "CZYX" and image.channel_names == ("x", "y", "z")
+    with pytest.raises(InputError, match="one letter per dimension"):
+        read_image(tmp_path / "four.tif", axes="CYX")
+    with pytest.raises(InputError, match="one name per channel"):
+        read_image(tmp_path / "c.tif", channel_names=["x", "y"])
+
+
+def test_lazy_reading_gives_dask_array_equal_to_eager(tmp_path, stack):
+    tifffile.imwrite(tmp_path / "z.ome.tif", stack, ome=True, metadata={"axes": "ZCYX"})
+    lazy = read_image(tmp_path / "z.ome.tif", lazy=True)
+    import dask.array as da
+
+    assert isinstance(lazy.data, da.Array)
+    np.testing.assert_array_equal(np.asarray(lazy.data), read_image(tmp_path / "z.ome.tif").data)
+
+
+def test_several_series_are_read_one_by_one(tmp_path, stack):
+    with tifffile.TiffWriter(tmp_path / "m.ome.tif", ome=True) as writer:
+        for z in range(2):
+            writer.write(stack[z], metadata={"axes": "CYX", "Channel": {"Name": ["a", "b", "c"]}})
+    images = read_images(tmp_path / "m.ome.tif")
+    assert [im.series for im in images] == [0, 1]
+    np.testing.assert_array_equal(images[1].data, stack[1])
+
+
+def test_ome_zarr_written_by_reference_writer_is_read(tmp_path, stack):
+    # Reference: ome-zarr's writer (NGFF metadata).
+    import zarr
+    from ome_zarr.writer import write_image
+
+    data = np.moveaxis(stack, 1, 0)
+    group = zarr.open_group(str(tmp_path / "r.ome.zarr"), mode="w")
+    write_image(data, group=group, axes="czyx", scaler=None)
+    image = read_image(tmp_path / "r.ome.zarr")
+    assert image.axes == "CZYX"
+    np.testing.assert_array_equal(image.data, data)
+
+
+def test_our_ome_zarr_is_read_by_reference_reader(tmp_path, stack):
+    # Reference: ome-zarr's reader finds the image and its axes.
+    from ome_zarr.io import parse_url
+    from ome_zarr.reader import Reader
+
+    image = Image(np.moveaxis(stack, 1, 0), "CZYX", ("a", "b", "c"), {"X": 0.2, "Y": 0.2, "Z": 1.0})
+    path = write_ome_zarr(tmp_path / "o.ome.zarr", image, provenance={"k": 1})
+    nodes = list(Reader(parse_url(str(path)))())
+    np.testing.assert_array_equal(np.asarray(nodes[0].data[0]), image.data)
+    back = read_image(path)
+    assert back.channel_names == ("a", "b", "c") and back.pixel_size["X"] == pytest.approx(0.2)
+
+
+@pytest.mark.parametrize("content", [b"", b"not an image at all", b"II*\x00" + b"\x00" * 20])
+def test_damaged_files_raise_input_error_naming_them(tmp_path, content):
+    path = tmp_path / "bad.tif"
+    path.write_bytes(content)
+    with pytest.raises(InputError, match="bad.tif"):
+        read_image(path)
+
+
+def test_truncated_tiff_raises_input_error(tmp_path, stack):
+    tifffile.imwrite(tmp_path / "t.ome.tif", stack, ome=True, metadata={"axes": "ZCYX"})
+    data = (tmp_path / "t.ome.tif").read_bytes()
+    (tmp_path / "cut.ome.tif").write_bytes(data[: len(data) // 2])
+    with pytest.raises(InputError, match="cut.ome.tif"):
+        read_image(tmp_path / "cut.ome.tif")
+
+
+def test_failed_write_leaves_nothing_behind(tmp_path, monkeypatch):
+    image = Image(np.zeros((2, 8, 8), np.float32), "CYX", ("a", "b"))
+
+    def explode(*args, **kwargs):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(tifffile, "imwrite", explode)
+    with pytest.raises(OSError):
+        write_ome_tiff(tmp_path / "out.ome.tif", image)
+    assert list(tmp_path.iterdir()) == []

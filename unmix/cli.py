@@ -1,0 +1,221 @@
+"""The ``unmix`` command line: subcommands that translate arguments into library calls.
+
+Exit codes: 0 success, 2 bad input (one ``error:`` line on stderr, naming the
+file or option and the fix; ``warning:`` lines may precede it), 1 internal
+failure. ``--debug`` shows tracebacks. Heavy libraries are imported inside
+the subcommands, so ``unmix --help`` starts at once.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import sys
+import traceback
+import warnings
+from pathlib import Path
+
+from ._version import __version__
+from .errors import InputError
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with the contract's one-line error and exit code 2."""
+
+    def error(self, message):
+        raise InputError(f"{self.prog}: {message}; see '{self.prog} --help'")
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    print(f"warning: {_one_line(message)}", file=sys.stderr)
+
+
+class _WarningLines(logging.Handler):
+    def emit(self, record):
+        print(f"warning: {record.name}: {_one_line(record.getMessage())}", file=sys.stderr)
+
+
+# --- argument helpers -------------------------------------------------------
+
+def _label_paths(values: list[str], option: str) -> dict[str, list[str]]:
+    result: dict[str, list[str]] = {}
+    for value in values or []:
+        label, sep, paths = value.partition("=")
+        label = label.strip()
+        if not sep or not label or not paths.strip():
+            raise InputError(f"{option} {value!r}: write it as LABEL=PATH[,PATH...]")
+        if label in result:
+            raise InputError(f"{option}: label {label!r} is given twice; give each label once "
+                             "(several fields of one label as LABEL=PATH1,PATH2)")
+        files = [p.strip() for p in paths.split(",")]
+        if any(not p for p in files):
+            raise InputError(f"{option} {value!r}: empty path in the list; separate paths with single commas")
+        result[label] = files
+    return result
+
+
+def _label_values(values: list[str], option: str) -> dict[str, str]:
+    result = {}
+    for value in values or []:
+        label, sep, target = value.partition("=")
+        if not sep or not label.strip() or not target.strip():
+            raise InputError(f"{option} {value!r}: write it as LABEL=CHANNEL")
+        if label.strip() in result:
+            raise InputError(f"{option}: label {label.strip()!r} is given twice; give it once")
+        result[label.strip()] = target.strip()
+    return result
+
+
+def _numbers(text: str | None, option: str):
+    if text is None:
+        return None
+    try:
+        values = [float(v) for v in text.split(",")]
+    except ValueError:
+        raise InputError(f"{option} {text!r}: give one number, or one per channel separated by commas") from None
+    if not all(v > 0 and v < float("inf") for v in values):
+        raise InputError(f"{option} {text!r}: levels must be positive finite numbers")
+    return values[0] if len(values) == 1 else values
+
+
+def _names(text: str | None):
+    return None if text is None else [n.strip() for n in text.split(",")]
+
+
+def _check_output(path: str, inputs, option: str = "-o") -> Path:
+    out = Path(path)
+    resolved = out.resolve()
+    for source in inputs:
+        if Path(source).resolve() == resolved:
+            raise InputError(f"{option} {path}: is also an input file; choose another output name")
+    if out.is_dir():
+        raise InputError(f"{option} {path}: is a folder; give a file name")
+    if not out.parent.resolve().is_dir():
+        raise InputError(f"{option} {path}: folder {out.parent} does not exist; create it first")
+    if not os.access(out.parent.resolve(), os.W_OK):
+        raise InputError(f"{option} {path}: folder {out.parent} is not writable; choose another location")
+    return out
+
+
+def _add_image_options(parser):
+    parser.add_argument("--axes", help="axis letters of the stored arrays, e.g. ZCYX (overrides metadata)")
+    parser.add_argument("--channel-names", help="comma-separated channel names (overrides metadata)")
+
+
+# --- subcommands ------------------------------------------------------------
+
+def _measure(args) -> int:
+    from .measure import MeasureSettings, measure_files
+    from .summary import matrix_summary
+
+    controls = _label_paths(args.control, "--control")
+    if not controls:
+        raise InputError("--control: give at least one LABEL=PATH")
+    inputs = [p for paths in controls.values() for p in paths]
+    inputs += [p for p in (args.unstained, args.dark) if p]
+    output = _check_output(args.output, inputs)
+    csv_path = _check_output(args.csv, inputs, "--csv") if args.csv else None
+    if csv_path is not None and csv_path.resolve() == output.resolve():
+        raise InputError(f"--csv {args.csv}: is the same file as -o; choose another name")
+    try:
+        settings = MeasureSettings(n_boot=args.bootstrap, block_size=args.block_size, seed=args.seed,
+                                   min_snr=args.min_snr,
+                                   max_saturated_fraction=args.max_saturated_percent / 100)
+    except ValueError as exc:
+        raise InputError(f"measure options: {exc}") from None
+    matrix = measure_files(
+        controls, unstained=args.unstained, dark=args.dark,
+        saturation=_numbers(args.saturation, "--saturation"),
+        primary=_label_values(args.primary, "--primary"), allow_nonfinite=args.allow_nonfinite,
+        settings=settings, axes=args.axes, channel_names=_names(args.channel_names),
+    )
+    matrix.save(output)
+    if csv_path is not None:
+        matrix.save_csv(csv_path)
+    if not args.quiet:
+        print(matrix_summary(matrix))
+        print(f"\nwrote {output}" + (f" and {csv_path}" if csv_path else ""))
+    return 0
+
+
+def _demo(args) -> int:
+    from .demo import run_demo
+
+    run_demo(args.output)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="unmix", description=__doc__.split("\n")[0])
+    parser.add_argument("--version", action="version", version=f"unmix {__version__}")
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    common.add_argument("--quiet", action="store_true", help="print nothing but warnings and errors")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    measure = sub.add_parser("measure", parents=[common], help="measure the bleed-through matrix from controls",
+                             description="Measure the bleed-through matrix from single-label control images.")
+    measure.add_argument("--control", action="append", metavar="LABEL=PATH[,PATH...]", required=True,
+                         help="single-label control of LABEL (several fields comma-separated); once per label")
+    measure.add_argument("--unstained", metavar="PATH", help="unlabelled specimen: offset plus autofluorescence")
+    measure.add_argument("--dark", metavar="PATH", help="dark frame: camera offset only")
+    measure.add_argument("--saturation", metavar="V[,V...]", help="saturation level, one or one per channel")
+    measure.add_argument("--primary", action="append", metavar="LABEL=CHANNEL",
+                         help="primary channel of LABEL (default: its brightest channel)")
+    measure.add_argument("--allow-nonfinite", action="store_true", help="exclude NaN/inf pixels instead of refusing")
+    measure.add_argument("-o", "--output", required=True, metavar="MATRIX.json", help="the matrix file to write")
+    measure.add_argument("--csv", metavar="TABLE.csv", help="also write the coefficients and QC as CSV")
+    measure.add_argument("--bootstrap", type=int, default=1000, metavar="N", help="bootstrap replicates (1000)")
+    measure.add_argument("--block-size", type=int, default=32, metavar="PX",
+                         help="side of the resampled spatial blocks in pixels (32)")
+    measure.add_argument("--min-snr", type=float, default=3.0,
+                         help="signal pixels: neighbour mean above background by this many noise SDs (3)")
+    measure.add_argument("--max-saturated-percent", type=float, default=25.0, metavar="P",
+                         help="refuse a control with more than P %% of its signal pixels saturated (25)")
+    measure.add_argument("--seed", type=int, default=0, help="bootstrap seed (0)")
+    _add_image_options(measure)
+    measure.set_defaults(run=_measure)
+
+    demo = sub.add_parser("demo", parents=[common], help="run the whole job on the shipped demo scenario",
+                          description="Run the tool on the shipped demo scenario and print where the results are.")
+    demo.add_argument("-o", "--output", default="unmix-demo", metavar="OUTDIR", help="output folder (unmix-demo)")
+    demo.set_defaults(run=_demo)
+    return parser
+
+
+def main(argv=None) -> int:
+    argv = sys.argv[1:] if argv is None else list(argv)
+    debug = "--debug" in argv
+    warnings.showwarning = _show_warning
+    warnings.simplefilter("default")
+    handler = _WarningLines(logging.WARNING)
+    logging.getLogger().addHandler(handler)
+    try:
+        args = build_parser().parse_args(argv)
+        return args.run(args)
+    except InputError as exc:
+        print(f"error: {_one_line(exc)}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("error: interrupted; outputs not finished were not written", file=sys.stderr)
+        return 130
+    except SystemExit as exc:  # --help and --version
+        return int(exc.code or 0)
+    except Exception as exc:  # noqa: BLE001 - the last line of defence
+        if debug:
+            traceback.print_exc()
+        print(f"internal error: {type(exc).__name__}: {_one_line(exc)}; rerun with --debug and report it",
+              file=sys.stderr)
+        return 1
+    finally:
+        logging.getLogger().removeHandler(handler)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,146 @@
+"""Detector levels: background (offset, autofluorescence) and saturation.
+
+Both are per channel and both are needed before any slope or abundance means
+anything: the linear model holds only above the offset and below saturation.
+
+Integer images are summarised by their exact histogram (one ``bincount``
+pass), which gives medians, robust spreads and saturation pile-ups at once
+without sorting; float images use a strided subsample for the quantiles.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+# Saturation pile-ups are looked for at the full scale of 8- to 16-bit
+# converters: 2^n - 1 for n = 8..16 (the command line's contract).
+SATURATION_CANDIDATES = tuple(2**n - 1 for n in range(16, 7, -1))
+SATURATION_MIN_FRACTION = 1e-4  # 0.01 % of a channel's pixels
+_FLOAT_SAMPLE = 1_000_000
+_MAD_TO_SIGMA = 1.4826  # sigma of a normal distribution from its MAD (common practice)
+
+
+@dataclass(frozen=True)
+class ChannelSummary:
+    """What one pass over one channel's pixels tells about its levels.
+
+    Attributes
+    ----------
+    median : float
+        Median of the finite pixels.
+    background : float
+        Robust background level: the centre of the dominant low peak,
+        found by iterative 3-sigma clipping of the median.
+    noise : float
+        Robust standard deviation of the background pixels.
+    candidate_counts : dict
+        Number of pixels exactly at each 2^n - 1 saturation candidate.
+    n_pixels : int
+        Number of finite pixels.
+    maximum : float
+        Largest finite pixel value.
+    max_of_type : float
+        Largest value the pixel type can hold.
+    """
+
+    median: float
+    background: float
+    noise: float
+    candidate_counts: dict
+    n_pixels: int
+    maximum: float
+    max_of_type: float
+
+
+def _weighted_quantile(values: np.ndarray, weights: np.ndarray, q: float) -> float:
+    cumulative = np.cumsum(weights)
+    if cumulative[-1] <= 0:
+        return float("nan")
+    return float(values[np.searchsorted(cumulative, q * cumulative[-1], side="left")])
+
+
+def _clipped_centre(values: np.ndarray, weights: np.ndarray, iterations: int = 20) -> tuple[float, float]:
+    """Median and MAD-sigma after iterative symmetric 3-sigma clipping."""
+    keep = weights > 0
+    centre = spread = float("nan")
+    for _ in range(iterations):
+        v, w = values[keep], weights[keep]
+        if w.sum() == 0:
+            break
+        centre = _weighted_quantile(v, w, 0.5)
+        order = np.argsort(np.abs(v - centre), kind="stable")
+        spread = _MAD_TO_SIGMA * _weighted_quantile(np.abs(v - centre)[order], w[order], 0.5)
+        if spread == 0:
+            # Quantised data with a narrow peak: fall back to the standard deviation.
+            mean = np.average(v, weights=w)
+            spread = float(np.sqrt(np.average((v - mean) ** 2, weights=w)))
+        new_keep = (weights > 0) & (np.abs(values - centre) <= 3 * max(spread, 1e-12))
+        if np.array_equal(new_keep, keep):
+            break
+        keep = new_keep
+    return centre, spread
+
+
+def summarise_channel(pixels) -> ChannelSummary:
+    """Summarise one channel's pixels (any shape) for background and saturation."""
+    pixels = np.asarray(pixels)
+    kind = pixels.dtype.kind
+    if kind in "ub" or (kind == "i" and pixels.dtype.itemsize <= 2):
+        flat = pixels.ravel()
+        offset = 0
+        if kind == "i":
+            offset = int(flat.min())
+            flat = flat.astype(np.int64) - offset
+        counts = np.bincount(flat)
+        values = np.arange(counts.size, dtype=np.float64) + offset
+        weights = counts.astype(np.float64)
+        n_pixels = int(counts.sum())
+        candidate_counts = {c: int(counts[c - offset]) if 0 <= c - offset < counts.size else 0
+                            for c in SATURATION_CANDIDATES}
+        max_of_type = float(np.iinfo(pixels.dtype).max) if kind in "ui" else 1.0
+    else:
+        flat = pixels.ravel()
+        finite = flat[np.isfinite(flat)] if kind == "f" else flat
+        n_pixels = int(finite.size)
+        step = max(1, finite.size // _FLOAT_SAMPLE)
+        values = np.sort(finite[::step].astype(np.float64))
+        weights = np.ones_like(values)
+        if kind == "f":
+            candidate_counts = {c: int(np.count_nonzero(finite == c)) for c in SATURATION_CANDIDATES}
+            max_of_type = float(np.finfo(pixels.dtype).max)
+        else:  # wide integers: exact counts are cheap enough
+            candidate_counts = {c: int(np.count_nonzero(finite == c)) for c in SATURATION_CANDIDATES}
+            max_of_type = float(np.iinfo(pixels.dtype).max)
+    if n_pixels == 0:
+        nan = float("nan")
+        return ChannelSummary(nan, nan, nan, candidate_counts, 0, nan, max_of_type)
+    median = _weighted_quantile(values, weights, 0.5)
+    background, noise = _clipped_centre(values, weights)
+    maximum = float(values[weights > 0][-1]) if kind in "ubi" and pixels.dtype.itemsize <= 2 else float(
+        finite.max())
+    return ChannelSummary(median, background, noise, candidate_counts, n_pixels, maximum, max_of_type)
+
+
+def saturation_level(summaries) -> float:
+    """The saturation level of one channel from the summaries of its images.
+
+    The largest 2^n - 1 (n = 8..16) that at least 0.01 % of the channel's
+    pixels reach, else the maximum of the pixel type. A converter cannot
+    report more than its full scale, so a candidate that some pixels exceed
+    is not the saturation level: only the largest value present can be, and
+    only when it is a pile-up of at least 0.01 % of the pixels. (Without that
+    rule, any 12-bit image whose pixels pass 2047 would be called saturated
+    at 2047.) Pixels at or above the level are saturated.
+    """
+    summaries = list(summaries)
+    total = sum(s.n_pixels for s in summaries)
+    maximum = max((s.maximum for s in summaries if s.n_pixels), default=float("nan"))
+    for candidate in SATURATION_CANDIDATES:
+        if candidate < maximum:
+            break
+        at_level = sum(s.candidate_counts.get(candidate, 0) for s in summaries)
+        if candidate == maximum and at_level >= SATURATION_MIN_FRACTION * total:
+            return float(candidate)
+    return min(s.max_of_type for s in summaries)

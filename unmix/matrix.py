@@ -1,0 +1,290 @@
+"""The bleed-through matrix and its file.
+
+``M[c, k]`` is the signal of label ``k`` in channel ``c`` divided by its
+signal in its primary channel, so every column is 1 at its primary channel.
+The file format (``"format": "unmix-matrix"``, version 1) is JSON; loading
+validates every field and names the first one that is wrong.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .atomic import write_text_atomic
+from .errors import InputError
+
+FORMAT = "unmix-matrix"
+VERSION = 1
+KINDS = ("measured", "predicted")
+BACKGROUND_SOURCES = ("unstained", "dark", "estimated")
+_PRIMARY_TOLERANCE = 1e-6
+
+
+@dataclass(frozen=True)
+class BleedThroughMatrix:
+    """A measured or predicted bleed-through matrix with its metadata.
+
+    Attributes
+    ----------
+    kind : {"measured", "predicted"}
+    channels : tuple of str
+        C channel names, in image channel order (the matrix rows).
+    labels : tuple of str
+        K label names (the matrix columns).
+    primary : dict
+        Label name -> its primary channel name.
+    matrix : ndarray, shape (C, K)
+    ci95_low, ci95_high : ndarray, shape (C, K), or None
+        95 % interval per coefficient (measured only).
+    background : ndarray, shape (C,), or None
+        Level subtracted before unmixing, in input units (measured only).
+    background_source : {"unstained", "dark", "estimated"} or None
+    saturation : ndarray, shape (C,), or None
+    qc : dict
+        Quality figures per coefficient and per label.
+    provenance : dict
+        Inputs, parameters, software version, time.
+    """
+
+    kind: str
+    channels: tuple
+    labels: tuple
+    primary: dict
+    matrix: np.ndarray
+    ci95_low: np.ndarray | None = None
+    ci95_high: np.ndarray | None = None
+    background: np.ndarray | None = None
+    background_source: str | None = None
+    saturation: np.ndarray | None = None
+    qc: dict = field(default_factory=dict)
+    provenance: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        validate_matrix_dict(self.to_dict(), "matrix")
+
+    # --- numbers derived from M -------------------------------------------
+
+    def noise_penalty(self) -> np.ndarray:
+        """Noise amplification per label, ``[(M^T M)^-1]_kk``.
+
+        With equal white noise in every channel and unconstrained least
+        squares, the variance of label k's abundance is multiplied by this
+        factor relative to an identity matrix (Lawson & Hanson 1974, ch. 7;
+        values below 1 are possible when there are more channels than labels).
+
+        References
+        ----------
+        C. L. Lawson and R. J. Hanson, *Solving Least Squares Problems*,
+        Prentice-Hall, 1974.
+        """
+        gram = self.matrix.T @ self.matrix
+        return np.diag(np.linalg.pinv(gram))
+
+    def condition_number(self) -> float:
+        """2-norm condition number of M (ratio of extreme singular values)."""
+        return float(np.linalg.cond(self.matrix))
+
+    def column(self, label: str) -> np.ndarray:
+        return self.matrix[:, self.labels.index(label)]
+
+    # --- serialisation -------------------------------------------------------
+
+    def to_dict(self) -> dict:
+        def listed(a):
+            return None if a is None else np.asarray(a, dtype=float).tolist()
+
+        return {
+            "format": FORMAT,
+            "version": VERSION,
+            "kind": self.kind,
+            "channels": list(self.channels),
+            "labels": list(self.labels),
+            "primary": dict(self.primary),
+            "matrix": listed(self.matrix),
+            "ci95_low": listed(self.ci95_low),
+            "ci95_high": listed(self.ci95_high),
+            "background": listed(self.background),
+            "background_source": self.background_source,
+            "saturation": listed(self.saturation),
+            "qc": self.qc,
+            "provenance": self.provenance,
+        }
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=2, allow_nan=False) + "\n"
+
+    def sha256(self) -> str:
+        """Checksum of the canonical JSON text, identifying this matrix."""
+        return hashlib.sha256(self.to_json().encode("utf-8")).hexdigest()
+
+    def save(self, path) -> Path:
+        """Write the matrix file atomically."""
+        write_text_atomic(path, self.to_json())
+        return Path(path)
+
+    def to_csv(self) -> str:
+        """One row per coefficient: value, interval and the main QC figures."""
+        out = io.StringIO()
+        writer = csv.writer(out, lineterminator="\n")
+        per_coefficient = [k for k, v in self.qc.items() if _is_grid(v, self.matrix.shape)]
+        writer.writerow(["channel", "label", "primary", "coefficient", "ci95_low", "ci95_high",
+                         *per_coefficient])
+        for c, channel in enumerate(self.channels):
+            for k, label in enumerate(self.labels):
+                row = [channel, label, self.primary[label], self.matrix[c, k]]
+                for bounds in (self.ci95_low, self.ci95_high):
+                    row.append("" if bounds is None else bounds[c, k])
+                row += [self.qc[name][c][k] for name in per_coefficient]
+                writer.writerow(["" if v is None else v for v in row])
+        return out.getvalue()
+
+    def save_csv(self, path) -> Path:
+        write_text_atomic(path, self.to_csv())
+        return Path(path)
+
+    @classmethod
+    def from_dict(cls, data: dict, where: str = "matrix") -> "BleedThroughMatrix":
+        validate_matrix_dict(data, where)
+
+        def array(key):
+            value = data.get(key)
+            return None if value is None else np.asarray(value, dtype=float)
+
+        return cls(
+            kind=data["kind"], channels=tuple(data["channels"]), labels=tuple(data["labels"]),
+            primary=dict(data["primary"]), matrix=array("matrix"), ci95_low=array("ci95_low"),
+            ci95_high=array("ci95_high"), background=array("background"),
+            background_source=data.get("background_source"), saturation=array("saturation"),
+            qc=dict(data.get("qc") or {}), provenance=dict(data.get("provenance") or {}),
+        )
+
+
+def _is_grid(value, shape) -> bool:
+    return (isinstance(value, list) and len(value) == shape[0]
+            and all(isinstance(row, list) and len(row) == shape[1] for row in value))
+
+
+def _names(data, key, where):
+    value = data.get(key)
+    if not isinstance(value, list) or not value or not all(isinstance(v, str) and v for v in value):
+        raise InputError(f"{where}: '{key}' must be a non-empty list of names; fix the matrix file")
+    if len(set(value)) != len(value):
+        raise InputError(f"{where}: '{key}' has duplicate names {value}; names must be unique")
+    return value
+
+
+def _grid(data, key, shape, where, required):
+    value = data.get(key)
+    if value is None:
+        if required:
+            raise InputError(f"{where}: '{key}' is missing; fix the matrix file")
+        return None
+    if not _is_grid(value, shape):
+        raise InputError(
+            f"{where}: '{key}' must be {shape[0]} rows (channels) of {shape[1]} numbers (labels); fix the matrix file"
+        )
+    try:
+        array = np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise InputError(f"{where}: '{key}' holds something that is not a number; fix the matrix file") from None
+    if not np.all(np.isfinite(array)):
+        raise InputError(f"{where}: '{key}' holds non-finite values; fix the matrix file")
+    return array
+
+
+def _vector(data, key, n, where, positive=False):
+    value = data.get(key)
+    if value is None:
+        return None
+    if not isinstance(value, list) or len(value) != n or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+        raise InputError(f"{where}: '{key}' must be null or a list of {n} numbers (one per channel); fix the matrix file")
+    array = np.asarray(value, dtype=float)
+    if not np.all(np.isfinite(array)) or (positive and np.any(array <= 0)):
+        raise InputError(f"{where}: '{key}' must hold finite{' positive' if positive else ''} numbers; fix the matrix file")
+    return array
+
+
+def validate_matrix_dict(data, where: str = "matrix") -> None:
+    """Check a parsed matrix file; raise InputError naming the first problem."""
+    if not isinstance(data, dict):
+        raise InputError(f"{where}: a matrix file must hold a JSON object; fix the matrix file")
+    if data.get("format") != FORMAT:
+        raise InputError(f"{where}: 'format' must be \"{FORMAT}\"; this is not a matrix file of this tool")
+    if data.get("version") != VERSION:
+        raise InputError(f"{where}: unsupported version {data.get('version')!r}; this tool reads version {VERSION}")
+    kind = data.get("kind")
+    if kind not in KINDS:
+        raise InputError(f"{where}: 'kind' must be one of {list(KINDS)}, not {kind!r}; fix the matrix file")
+    channels = _names(data, "channels", where)
+    labels = _names(data, "labels", where)
+    shape = (len(channels), len(labels))
+    primary = data.get("primary")
+    if not isinstance(primary, dict) or set(primary) != set(labels):
+        raise InputError(f"{where}: 'primary' must name one channel for each label {labels}; fix the matrix file")
+    for label, channel in primary.items():
+        if channel not in channels:
+            raise InputError(f"{where}: primary channel {channel!r} of label {label!r} is not among 'channels'; fix the matrix file")
+    matrix = _grid(data, "matrix", shape, where, required=True)
+    for k, label in enumerate(labels):
+        value = matrix[channels.index(primary[label]), k]
+        if abs(value - 1.0) > _PRIMARY_TOLERANCE:
+            raise InputError(
+                f"{where}: column {label!r} is {value:g} at its primary channel {primary[label]!r}, not 1; "
+                "normalise each column by its primary channel"
+            )
+    low = _grid(data, "ci95_low", shape, where, required=False)
+    high = _grid(data, "ci95_high", shape, where, required=False)
+    if (low is None) != (high is None):
+        raise InputError(f"{where}: give both 'ci95_low' and 'ci95_high', or neither; fix the matrix file")
+    if low is not None:
+        if kind == "predicted":
+            raise InputError(f"{where}: a predicted matrix has no confidence interval; set 'ci95_low'/'ci95_high' to null")
+        tolerance = 1e-9 * np.maximum(1.0, np.abs(matrix))
+        if np.any(low > matrix + tolerance) or np.any(high < matrix - tolerance):
+            raise InputError(f"{where}: a 95 % interval does not contain its coefficient; fix 'ci95_low'/'ci95_high'")
+    background = _vector(data, "background", shape[0], where)
+    source = data.get("background_source")
+    if source is not None and source not in BACKGROUND_SOURCES:
+        raise InputError(f"{where}: 'background_source' must be one of {list(BACKGROUND_SOURCES)} or null; fix the matrix file")
+    if (background is None) != (source is None):
+        raise InputError(f"{where}: 'background' and 'background_source' must both be given or both null; fix the matrix file")
+    _vector(data, "saturation", shape[0], where, positive=True)
+    for key in ("qc", "provenance"):
+        if data.get(key) is not None and not isinstance(data.get(key), dict):
+            raise InputError(f"{where}: '{key}' must be a JSON object; fix the matrix file")
+
+
+def _reject_constant(name):
+    raise ValueError(f"non-standard JSON number {name}")
+
+
+def load_matrix(path) -> BleedThroughMatrix:
+    """Read and validate a matrix file.
+
+    Raises
+    ------
+    InputError
+        Naming the file and the first thing that is wrong with it.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such matrix file; check the path") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: cannot read the matrix file ({exc.__class__.__name__}); check the file") from None
+    try:
+        data = json.loads(text, parse_constant=_reject_constant)
+    except (json.JSONDecodeError, ValueError, RecursionError) as exc:
+        detail = f"line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else str(exc)
+        raise InputError(f"{path}: not valid JSON ({detail}); fix or re-create the matrix file") from None
+    return BleedThroughMatrix.from_dict(data, where=str(path))
+
