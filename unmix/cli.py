@@ -192,8 +192,13 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv=None) -> int:
     argv = sys.argv[1:] if argv is None else list(argv)
     debug = "--debug" in argv
-    warnings.showwarning = _show_warning
-    warnings.simplefilter("default")
+    with warnings.catch_warnings():
+        warnings.showwarning = _show_warning
+        warnings.simplefilter("default")
+        return _run(argv, debug)
+
+
+def _run(argv, debug: bool) -> int:
     handler = _WarningLines(logging.WARNING)
     logging.getLogger().addHandler(handler)
     try:

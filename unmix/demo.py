@@ -240,8 +240,9 @@ def demo_inputs(stacks: Path | None = None) -> dict:
     }
 
 
-def run_demo(outdir, out=sys.stdout) -> dict:
+def run_demo(outdir, out=None) -> dict:
     """Run the tool on the shipped demo scenario, writing results to `outdir`."""
+    out = out or sys.stdout
     from .measure import measure_files
     from .summary import matrix_summary
 

@@ -172,13 +172,25 @@ def _neighbour_mean(plane_stack: np.ndarray) -> np.ndarray:
     return (total - plane_stack) / np.float32(8)
 
 
+def _high_pass(plane: np.ndarray, sigma: float = 8.0) -> np.ndarray:
+    from scipy.ndimage import gaussian_filter
+
+    return plane - gaussian_filter(plane, sigma)
+
+
 def _registration_shift(reference: np.ndarray, moving: np.ndarray) -> np.ndarray:
-    """Sub-pixel shift of the cross-correlation peak (skimage phase_cross_correlation)."""
+    """Sub-pixel shift of the cross-correlation peak (skimage phase_cross_correlation).
+
+    Both planes are high-pass filtered first: smooth components (uneven
+    illumination, diffuse autofluorescence) differ between channels and would
+    otherwise broaden and displace the peak (common practice).
+    """
     from skimage.registration import phase_cross_correlation
 
     if not (np.any(reference) and np.any(moving)):
         return np.array([np.nan, np.nan])
-    shift, _, _ = phase_cross_correlation(reference, moving, upsample_factor=10, normalization=None)
+    shift, _, _ = phase_cross_correlation(_high_pass(reference), _high_pass(moving), upsample_factor=10,
+                                          normalization=None)
     return np.asarray(shift, dtype=float)
 
 
@@ -602,8 +614,8 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             significant = bow_lo[c] > 0 or bow_hi[c] < 0
             if detectable and significant and bow > 0.2 * abs(slope[c]):
                 flags.append(f"{label} in {channels[c]}: slope differs between dim and bright pixels "
-                             f"({estimates['slope_dim'][c]:.4f} vs {estimates['slope_bright'][c]:.4f}); "
-                             "check detector linearity")
+                             f"({estimates['slope_dim'][c]:.4f} vs {estimates['slope_bright'][c]:.4f}): a non-linear "
+                             "detector or an unmodelled signal such as structured autofluorescence")
             shift = grids["registration_shift_px"][c, k]
             if not detectable:
                 # No leak to correlate with: the peak position would be noise.

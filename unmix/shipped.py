@@ -8,7 +8,7 @@ without installing finds the folders directly.
 
 from __future__ import annotations
 
-from importlib import resources
+import importlib.util
 from pathlib import Path
 
 _FOLDERS = ("demo_stacks", "configs")
@@ -21,4 +21,8 @@ def shipped_dir(name: str) -> Path:
     source_tree = Path(__file__).resolve().parent.parent / name
     if source_tree.is_dir():
         return source_tree
-    return Path(str(resources.files(f"unmix.{name}")))
+    # Installed: a data-only (namespace) package inside unmix.
+    spec = importlib.util.find_spec(f"unmix.{name}")
+    if spec is None or not spec.submodule_search_locations:
+        raise FileNotFoundError(f"the shipped folder {name!r} is missing from this installation; reinstall unmix")
+    return Path(list(spec.submodule_search_locations)[0])
