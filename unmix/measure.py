@@ -49,6 +49,7 @@ References
 from __future__ import annotations
 
 import math
+import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -164,14 +165,6 @@ def _reference_level(image: Image) -> np.ndarray:
     return level
 
 
-def _neighbour_mean(plane_stack: np.ndarray) -> np.ndarray:
-    """Mean of the 8 neighbours of every pixel (centre excluded), per YX plane."""
-    from scipy.ndimage import uniform_filter
-
-    total = uniform_filter(plane_stack, size=(1, 3, 3), mode="constant") * np.float32(9)
-    return (total - plane_stack) / np.float32(8)
-
-
 def _high_pass(plane: np.ndarray, sigma: float = 8.0) -> np.ndarray:
     from scipy.ndimage import gaussian_filter
 
@@ -181,27 +174,41 @@ def _high_pass(plane: np.ndarray, sigma: float = 8.0) -> np.ndarray:
 def _registration_shift(reference: np.ndarray, moving: np.ndarray) -> np.ndarray:
     """Sub-pixel shift of the cross-correlation peak (skimage phase_cross_correlation).
 
-    Both planes are high-pass filtered first: smooth components (uneven
-    illumination, diffuse autofluorescence) differ between channels and would
-    otherwise broaden and displace the peak (common practice).
+    Both planes are high-pass filtered by the caller (:func:`_high_pass`):
+    smooth components (uneven illumination, diffuse autofluorescence) differ
+    between channels and would otherwise broaden and displace the peak
+    (common practice).
     """
     from skimage.registration import phase_cross_correlation
 
     if not (np.any(reference) and np.any(moving)):
         return np.array([np.nan, np.nan])
-    shift, _, _ = phase_cross_correlation(_high_pass(reference), _high_pass(moving), upsample_factor=10,
-                                          normalization=None)
+    shift, _, _ = phase_cross_correlation(reference, moving, upsample_factor=10, normalization=None)
     return np.asarray(shift, dtype=float)
 
 
-def _crop_for_registration(stack: np.ndarray, usable: np.ndarray, size: int = 256):
-    """The window of at most `size` pixels around the plane and place with most usable pixels."""
-    plane = int(np.argmax(usable.sum(axis=(1, 2))))
-    rows = np.flatnonzero(usable[plane].any(axis=1))
-    cols = np.flatnonzero(usable[plane].any(axis=0))
-    ny, nx = stack.shape[-2:]
-    cy = int(np.median(rows)) if rows.size else ny // 2
-    cx = int(np.median(cols)) if cols.size else nx // 2
+_THREADS = max(1, min(8, os.cpu_count() or 1))
+
+
+def _in_threads(kernel, argument_lists):
+    """Run a GIL-releasing kernel on each argument list, in threads; results in order."""
+    if len(argument_lists) == 1:
+        return [kernel(*argument_lists[0])]
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=len(argument_lists)) as pool:
+        return list(pool.map(lambda arguments: kernel(*arguments), argument_lists))
+
+
+def _crop_for_registration(shape, usable: np.ndarray, size: int = 256):
+    """A window of at most `size` pixels in the plane with most usable pixels, centred on its
+    middle usable pixel (indices are in raster order, so that pixel lies on the median row)."""
+    n_planes, ny, nx = shape
+    planes = usable // (ny * nx)
+    plane = int(np.argmax(np.bincount(planes, minlength=n_planes)))
+    in_plane = usable[planes == plane] % (ny * nx)
+    middle = int(in_plane[in_plane.size // 2]) if in_plane.size else (ny // 2) * nx + nx // 2
+    cy, cx = divmod(middle, nx)
     y0 = min(max(cy - size // 2, 0), max(ny - size, 0))
     x0 = min(max(cx - size // 2, 0), max(nx - size, 0))
     return plane, slice(y0, y0 + size), slice(x0, x0 + size)
@@ -210,6 +217,8 @@ def _crop_for_registration(stack: np.ndarray, usable: np.ndarray, size: int = 25
 def _field_statistics(image: Image, primary: int, levels: np.ndarray, background: np.ndarray | None,
                       settings: MeasureSettings, allow_nonfinite: bool,
                       summaries: list | None = None) -> _FieldResult:
+    from .measure_kernels import block_statistics, select_pixels
+
     stack = _stack(image)
     n_channels, n_planes, ny, nx = stack.shape
     if ny < 3 or nx < 3:
@@ -220,109 +229,58 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
         background = np.array([s.background for s in summaries])
     if not np.all(np.isfinite(background)):
         raise InputError(f"{image.name}: a channel has no finite pixels; check the control")
+    background = np.asarray(background, dtype=np.float64)
+    levels = np.asarray(levels, dtype=np.float64)
+    noise = summaries[primary].noise
+    threshold = (summaries[primary].background - background[primary]) + settings.min_snr * noise
 
-    nonfinite = np.zeros(stack.shape[1:], dtype=bool)
-    if stack.dtype.kind == "f":
-        for c in range(n_channels):
-            nonfinite |= ~np.isfinite(stack[c])
-    n_nonfinite = int(nonfinite.sum())
+    # The kernels release the GIL: split rows (then usable pixels) among threads.
+    bounds = np.linspace(0, ny, _THREADS + 1).astype(int)
+    parts = _in_threads(select_pixels, [
+        (stack, background, levels, primary, float(threshold), stack.dtype.kind == "f", int(a), int(b))
+        for a, b in zip(bounds[:-1], bounds[1:]) if b > a])
+    usable = np.concatenate([p[0] for p in parts])
+    proxies = np.concatenate([p[1] for p in parts])
+    n_signal = sum(p[2] for p in parts)
+    saturated_signal = sum(p[3] for p in parts)
+    channel_sums = sum(p[4] for p in parts)
+    n_valid = sum(p[5] for p in parts)
+    n_nonfinite = sum(p[6] for p in parts)
+    if n_planes > 1:
+        # Row chunks hold every plane: restore raster order over (plane, row, column).
+        order = np.argsort(usable, kind="stable")
+        usable, proxies = usable[order], proxies[order]
     if n_nonfinite and not allow_nonfinite:
         raise InputError(
             f"{image.name}: {n_nonfinite} NaN/inf pixels; fix the control or pass --allow-nonfinite to exclude them"
         )
-    saturated = np.zeros(stack.shape[1:], dtype=bool)
-    saturated_by_channel = []
-    for c in range(n_channels):
-        at_level = stack[c] >= levels[c]
-        saturated_by_channel.append(at_level)
-        saturated |= at_level
-
-    x_full = stack[primary].astype(np.float32) - np.float32(background[primary])
-    if n_nonfinite:
-        x_full[nonfinite] = 0
-    proxy = _neighbour_mean(x_full)
-    eligible = np.zeros(stack.shape[1:], dtype=bool)
-    eligible[:, 1:-1, 1:-1] = True
-    if n_nonfinite:
-        from scipy.ndimage import maximum_filter
-
-        eligible &= ~maximum_filter(nonfinite, size=(1, 3, 3), mode="constant")
-    noise = summaries[primary].noise
-    threshold = (summaries[primary].background - background[primary]) + settings.min_snr * noise
-    signal = eligible & (proxy > threshold)
-    n_signal = int(signal.sum())
-    saturated_signal = np.array([int(np.count_nonzero(signal & s)) for s in saturated_by_channel])
-    usable = signal & ~saturated
-    del saturated_by_channel
-
-    valid = ~(saturated | nonfinite)
-    n_valid = int(valid.sum())
-    channel_sums = np.array([
-        float(np.sum(stack[c], where=valid, dtype=np.float64)) - background[c] * n_valid
-        for c in range(n_channels)
-    ])
-
-    flat_index = np.flatnonzero(usable)
-    z = proxy.ravel()[flat_index].astype(np.float64)
-    x = x_full.ravel()[flat_index].astype(np.float64)
-    row = (flat_index // nx) % ny
-    col = flat_index % nx
-    b = settings.block_size
-    blocks_x = -(-nx // b)
-    block = (row // b) * blocks_x + (col // b)
-    n_blocks = (-(-ny // b)) * blocks_x
-    low = z < np.median(z) if z.size else np.zeros(0, dtype=bool)
-
+    split = float(np.median(proxies)) if proxies.size else 0.0
     n_stats = _N_SCALARS + len(_PER_CHANNEL) * n_channels
-    stats = np.zeros((n_blocks, n_stats))
-
-    def add(column, weights, where=None):
-        if where is None:
-            stats[:, column] = np.bincount(block, weights=weights, minlength=n_blocks)
-        else:
-            stats[:, column] = np.bincount(block[where], weights=weights[where], minlength=n_blocks)
-
-    ones = np.ones_like(z)
-    add(_N, ones)
-    add(_SZ, z)
-    add(_SX, x)
-    add(_SZX, z * x)
-    add(_SXX, x * x)
-    add(_NLO, ones, low)
-    add(_SZLO, z, low)
-    add(_SXLO, x, low)
-    add(_SZXLO, z * x, low)
-    for c in range(n_channels):
-        y = stack[c].ravel()[flat_index].astype(np.float64) - background[c]
-        column = lambda name: _channel_column(name, c, n_channels)  # noqa: E731
-        add(column("sy"), y)
-        add(column("szy"), z * y)
-        add(column("sxy"), x * y)
-        add(column("syy"), y * y)
-        add(column("sylo"), y, low)
-        add(column("szylo"), z * y, low)
+    cuts = np.linspace(0, usable.size, _THREADS + 1).astype(int)
+    stats = sum(_in_threads(block_statistics, [
+        (stack, background, primary, usable[a:b], proxies[a:b], split, settings.block_size, n_stats, _N_SCALARS)
+        for a, b in zip(cuts[:-1], cuts[1:])]))
     stats = stats[stats[:, _N] > 0]
 
     shift = np.full((n_channels, 2), np.nan)
-    if flat_index.size:
-        plane, rows, cols = _crop_for_registration(stack, usable)
-        reference = stack[primary, plane, rows, cols].astype(np.float32) - np.float32(background[primary])
-        for c in range(n_channels):
-            if c == primary:
-                shift[c] = 0.0
-                continue
-            moving = stack[c, plane, rows, cols].astype(np.float32) - np.float32(background[c])
+    if usable.size:
+        plane, rows, cols = _crop_for_registration(stack.shape[1:], usable)
+
+        def crop(c):
+            window = stack[c, plane, rows, cols].astype(np.float32) - np.float32(background[c])
             if n_nonfinite:
-                moving = np.nan_to_num(moving, nan=0.0, posinf=0.0, neginf=0.0)
-                reference = np.nan_to_num(reference, nan=0.0, posinf=0.0, neginf=0.0)
-            shift[c] = _registration_shift(reference, moving)
+                window = np.nan_to_num(window, nan=0.0, posinf=0.0, neginf=0.0)
+            return _high_pass(window)
+
+        reference = crop(primary)
+        for c in range(n_channels):
+            shift[c] = 0.0 if c == primary else _registration_shift(reference, crop(c))
 
     return _FieldResult(
-        source=image.name, primary=primary, levels=np.asarray(levels, dtype=float),
-        background=np.asarray(background, dtype=float), summaries=summaries, block_stats=stats,
-        n_signal=n_signal, n_usable=int(flat_index.size), n_nonfinite=n_nonfinite,
-        saturated_signal=saturated_signal, channel_sums=channel_sums, n_valid=n_valid, noise=float(noise),
-        shift=shift,
+        source=image.name, primary=primary, levels=levels, background=background, summaries=summaries,
+        block_stats=stats, n_signal=int(n_signal), n_usable=int(usable.size), n_nonfinite=int(n_nonfinite),
+        saturated_signal=np.asarray(saturated_signal), channel_sums=np.asarray(channel_sums),
+        n_valid=int(n_valid), noise=float(noise), shift=shift,
     )
 
 
@@ -393,10 +351,13 @@ def _bootstrap(fields: list[_FieldResult], n_channels: int, settings: MeasureSet
         copies = rng.multinomial(n_fields, np.full(n_fields, 1 / n_fields), size=settings.n_boot)
     else:
         copies = np.ones((settings.n_boot, 1), dtype=np.int64)
+    from .measure_kernels import block_weights
+
     replicate_sums = []
     for f, result in enumerate(fields):
-        n_blocks = result.block_stats.shape[0]
-        weights = rng.multinomial(copies[:, f] * n_blocks, np.full(n_blocks, 1 / n_blocks))
+        draws = int(copies[:, f].sum()) * result.block_stats.shape[0]
+        random_bits = rng.bit_generator.random_raw(draws // 2 + 1)
+        weights = block_weights(copies[:, f].astype(np.int64), result.block_stats.shape[0], random_bits)
         replicate_sums.append(weights @ result.block_stats)
     return _slopes(replicate_sums, n_channels)
 

@@ -1,0 +1,104 @@
+"""Benchmark: `measure` on four 4 x 2048 x 2048 uint16 controls.
+
+Targets: measuring (bootstrap included) takes at most 10x the time of just
+reading the same files, both timed in one process; peak memory above the
+import baseline stays under 6x the size of one control. Prints the ratios.
+
+    python tests/benchmarks/bench_measure.py [--size 2048]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+CHANNELS = ("c0", "c1", "c2", "c3")
+
+
+def make_controls(folder: Path, size: int) -> dict:
+    """Four simulated single-label controls (invented data), uncompressed OME-TIFF."""
+    import tifffile
+    from scipy.ndimage import gaussian_filter
+
+    rng = np.random.default_rng(0)
+    matrix = np.array([[1, .05, .01, 0], [.2, 1, .08, .01], [.05, .3, 1, .1], [.01, .05, .25, 1]])
+    controls = {}
+    for k in range(4):
+        spots = np.zeros((size, size), np.float32)
+        n = size * size // 400
+        spots[rng.integers(0, size, n), rng.integers(0, size, n)] = rng.uniform(0.5, 1.5, n)
+        truth = gaussian_filter(spots, 1.5)
+        truth *= 1500 / truth.max()
+        data = np.empty((4, size, size), np.uint16)
+        for c in range(4):
+            expected = 100 + matrix[c, k] * truth
+            data[c] = np.clip(rng.poisson(expected) + rng.normal(0, 5, expected.shape), 0, 4095)
+        path = folder / f"control_{k}.ome.tif"
+        tifffile.imwrite(path, data, ome=True, metadata={"axes": "CYX", "Channel": {"Name": list(CHANNELS)}})
+        controls[f"L{k}"] = [str(path)]
+    return controls
+
+
+def best_of(repeats, function):
+    times = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        function()
+        times.append(time.perf_counter() - start)
+    return min(times)
+
+
+def peak_memory_child(controls_json: str) -> None:
+    """Run in a fresh process: print the peak RSS above the import baseline, in bytes."""
+    import unmix.measure  # noqa: F401 - the import baseline includes the library
+    import scipy.ndimage, skimage.registration, tifffile  # noqa: E401, F401
+
+    baseline = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    from unmix.measure import measure_files
+
+    measure_files(json.loads(controls_json))
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    print(peak - baseline)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--size", type=int, default=2048)
+    parser.add_argument("--child", help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        peak_memory_child(args.child)
+        return
+    import tifffile
+
+    from unmix.measure import measure_files
+
+    with tempfile.TemporaryDirectory() as tmp:
+        controls = make_controls(Path(tmp), args.size)
+        paths = [p for ps in controls.values() for p in ps]
+        control_bytes = 4 * args.size * args.size * 2
+        # Warm the page cache, then time plain reading against measuring.
+        for path in paths:
+            tifffile.imread(path)
+        read = best_of(3, lambda: [tifffile.imread(p) for p in paths])
+        measure = best_of(2, lambda: measure_files(controls))
+        child = subprocess.run([sys.executable, __file__, "--child", json.dumps(controls)],
+                               capture_output=True, text=True, check=True)
+        extra = int(child.stdout.strip().splitlines()[-1])
+    print(f"controls: 4 x (4 x {args.size} x {args.size}) uint16, {control_bytes / 2**20:.0f} MiB each")
+    print(f"read all four: {read:.3f} s; measure (1000 bootstrap replicates): {measure:.3f} s")
+    print(f"time ratio measure / read: {measure / read:.2f}  (target <= 10)")
+    print(f"peak memory above import baseline: {extra / 2**20:.0f} MiB = "
+          f"{extra / control_bytes:.2f} x one control  (target < 6)")
+
+
+if __name__ == "__main__":
+    main()
