@@ -30,6 +30,8 @@ class ChannelSummary:
     ----------
     median : float
         Median of the finite pixels.
+    mean : float
+        Mean of the finite pixels.
     background : float
         Robust background level: the centre of the dominant low peak,
         found by iterative 3-sigma clipping of the median.
@@ -46,6 +48,7 @@ class ChannelSummary:
     """
 
     median: float
+    mean: float
     background: float
     noise: float
     candidate_counts: dict
@@ -121,11 +124,12 @@ def summarise_channel(pixels) -> ChannelSummary:
             max_of_type = float(np.iinfo(pixels.dtype).max)
     if n_pixels == 0:
         nan = float("nan")
-        return ChannelSummary(nan, nan, nan, candidate_counts, 0, nan, max_of_type)
+        return ChannelSummary(nan, nan, nan, nan, candidate_counts, 0, nan, max_of_type)
     median = _weighted_quantile(values, weights, 0.5)
+    mean = float(np.average(values, weights=weights))
     background, noise = _clipped_centre(values, weights)
     maximum = float(values[-1]) if kind in "ubi" and pixels.dtype.itemsize <= 2 else float(finite.max())
-    return ChannelSummary(median, background, noise, candidate_counts, n_pixels, maximum, max_of_type)
+    return ChannelSummary(median, mean, background, noise, candidate_counts, n_pixels, maximum, max_of_type)
 
 
 def saturation_level(summaries) -> float:
