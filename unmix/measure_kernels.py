@@ -18,12 +18,7 @@ import numpy as np
 from numba import njit
 
 
-# Reassociation lets LLVM vectorise the sums; NaN/inf semantics are kept
-# (no "nnan"/"ninf"), since non-finite pixels must be detected.
-_FAST_FINITE = {"reassoc", "contract", "nsz", "arcp"}
-
-
-@njit(cache=True, nogil=True, fastmath=_FAST_FINITE)
+@njit(cache=True, nogil=True)
 def select_pixels(stack, background, levels, primary, threshold, check_finite, row_start, row_stop):
     """First pass over rows [row_start, row_stop) of every plane.
 
@@ -147,7 +142,7 @@ def histogram(values, n_bins):
     return counts
 
 
-@njit(cache=True, nogil=True, fastmath=_FAST_FINITE)
+@njit(cache=True, nogil=True)
 def block_statistics(stack, background, primary, usable, proxies, split, block_size, n_stats, per_channel_start):
     """Second pass: per-block sums for the instrumental-variable slopes.
 
