@@ -47,6 +47,7 @@ import numpy as np
 
 MAX_LABELS = 8
 METHODS = ("nnls", "ls")
+_CHUNK = 1 << 15
 
 
 @dataclass(frozen=True)
@@ -87,6 +88,11 @@ class Unmixer:
         return self.matrix.T @ self.matrix
 
     @cached_property
+    def ls_operator(self) -> np.ndarray:
+        """``(M^T M)^-1``, applied to ``z`` for unconstrained least squares."""
+        return np.linalg.inv(self.gram)
+
+    @cached_property
     def support_inverses(self) -> np.ndarray:
         """``inverses[mask]``: (G_SS)^-1 embedded in K x K zeros, for every support bitmask."""
         k = self.n_labels
@@ -114,15 +120,20 @@ class Unmixer:
         if y.shape[0] != self.matrix.shape[0]:
             raise ValueError(f"pixels have {y.shape[0]} channels, the matrix {self.matrix.shape[0]}")
         b = np.zeros(self.matrix.shape[0]) if background is None else np.asarray(background, dtype=np.float64)
-        # z = M^T (y - b) = M^T y - M^T b: one BLAS product in float64.
-        z = self.matrix.T @ y.astype(np.float64, copy=False) - (self.matrix.T @ b)[:, None]
-        if self.method == "ls":
-            abundances = (np.linalg.inv(self.gram) @ z).astype(np.float32)
-        else:
+        offset = (self.matrix.T @ b)[:, None]
+        abundances = np.empty((self.n_labels, y.shape[1]), np.float32)
+        if self.method == "nnls":
             from .solve_kernels import nnls_from_normal_equations
-
-            abundances = np.empty(z.shape, np.float32)
-            nnls_from_normal_equations(z, self.gram, self.support_inverses, self.support_order, abundances)
+        # Chunks small enough for the float64 temporaries to stay in cache.
+        for start in range(0, y.shape[1], _CHUNK):
+            chunk = slice(start, start + _CHUNK)
+            # z = M^T (y - b) = M^T y - M^T b: one BLAS product in float64.
+            z = self.matrix.T @ y[:, chunk].astype(np.float64) - offset
+            if self.method == "ls":
+                abundances[:, chunk] = self.ls_operator @ z
+            else:
+                nnls_from_normal_equations(z, self.gram, self.support_inverses, self.support_order,
+                                           abundances[:, chunk])
         return abundances.reshape((self.n_labels,) + shape)
 
     def residual(self, pixels: np.ndarray, abundances: np.ndarray, background=None) -> np.ndarray:
