@@ -5,7 +5,8 @@ from __future__ import annotations
 from .matrix import BleedThroughMatrix
 
 
-def _table(rows: list[list[str]]) -> str:
+def table(rows: list[list[str]]) -> str:
+    """Columns aligned, first left and the rest right, a rule under the header row."""
     widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
     lines = ["  ".join(cell.ljust(w) if i == 0 else cell.rjust(w) for i, (cell, w) in enumerate(zip(row, widths)))
              for row in rows]
@@ -28,7 +29,7 @@ def matrix_summary(matrix: BleedThroughMatrix) -> str:
                 cells.append(f"{value:.4f}")
         rows.append([channel, *cells])
     parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel,"
-             + (" 95 % interval)" if matrix.ci95_low is not None else ")"), _table(rows)]
+             + (" 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
     per_label = matrix.qc.get("labels", {})
     if per_label:
         rows = [["label", "primary", "fields", "usable pixels", "saturated in primary"]]
@@ -38,7 +39,7 @@ def matrix_summary(matrix: BleedThroughMatrix) -> str:
             rows.append([label, matrix.primary[label], str(info.get("fields", "")),
                          str(info.get("usable_pixels", "")),
                          "" if fraction is None else f"{100 * fraction:.2f} %"])
-        parts += ["", _table(rows)]
+        parts += ["", table(rows)]
     if matrix.background is not None:
         levels = ", ".join(f"{c} {b:.1f}" for c, b in zip(matrix.channels, matrix.background))
         parts += ["", f"Background ({matrix.background_source}): {levels}"]

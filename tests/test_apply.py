@@ -1,0 +1,209 @@
+"""`unmix apply`: batch unmixing, outputs, resume and refusals."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+
+from conftest import fingerprint
+from unmix.cli import main
+from unmix.images import Image, read_image, read_provenance, write_ome_tiff
+from unmix.matrix import BleedThroughMatrix, load_matrix
+from unmix.measure import MeasureSettings, measure_files
+from unmix.solve import Unmixer
+
+
+@pytest.fixture(scope="module")
+def demo_matrix(tmp_path_factory, demo):
+    path = tmp_path_factory.mktemp("matrix") / "m.json"
+    measure_files(demo["controls"], unstained=demo["unstained"], settings=MeasureSettings(n_boot=200)).save(path)
+    return path
+
+
+def _run(argv, capsys):
+    code = main([str(a) for a in argv])
+    captured = capsys.readouterr()
+    return code, captured.out, [line for line in captured.err.splitlines() if line]
+
+
+def test_demo_sample_recovers_ground_truth(demo, demo_matrix, tmp_path, capsys):
+    # Self-consistency on the invented demo: abundances match the simulated truth within noise.
+    before = fingerprint([demo["sample"], demo_matrix])
+    code, out, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path], capsys)
+    assert code == 0, err
+    assert "Noise penalty" in out and "condition number" in out
+    result = read_image(tmp_path / "sample.unmixed.ome.tif")
+    truth = read_image(Path(demo["sample"]).with_name("sample_truth.ome.tif"))
+    assert result.channel_names == truth.channel_names and result.data.dtype == np.float32
+    for k in range(3):
+        error = result.data[k] - truth.data[k]
+        assert abs(error.mean()) < 0.01 * truth.data[k].max()
+        assert np.corrcoef(result.data[k].ravel(), truth.data[k].ravel())[0, 1] > 0.98
+    provenance = read_provenance(tmp_path / "sample.unmixed.ome.tif")
+    assert provenance["matrix"]["sha256"] == load_matrix(demo_matrix).sha256()
+    assert provenance["method"] == "nnls" and provenance["input"]["name"] == "sample.ome.tif"
+    assert read_image(tmp_path / "sample.saturation.ome.tif").channel_names == ("saturated",)
+    manifest = json.loads((tmp_path / "unmix-manifest.json").read_text())
+    assert "sample.unmixed.ome.tif" in manifest["outputs"]
+    assert fingerprint([demo["sample"], demo_matrix]) == before
+
+
+def test_rerun_keeps_finished_outputs_and_refuses_other_settings(demo, demo_matrix, tmp_path, capsys):
+    argv = ["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path]
+    assert _run(argv, capsys)[0] == 0
+    output = tmp_path / "sample.unmixed.ome.tif"
+    stamp = output.stat().st_mtime_ns
+    code, out, _ = _run(argv, capsys)
+    assert code == 0 and "kept" in out and output.stat().st_mtime_ns == stamp
+    code, _, err = _run(argv + ["--method", "ls"], capsys)
+    assert code == 2 and "--overwrite" in err[-1] and output.stat().st_mtime_ns == stamp
+    assert _run(argv + ["--method", "ls", "--overwrite"], capsys)[0] == 0
+    assert read_provenance(output)["method"] == "ls"
+
+
+def _stack_file(path, data, axes, names):
+    tifffile.imwrite(path, data, ome=True, photometric="minisblack",
+                     metadata={"axes": axes, "Channel": {"Name": list(names)}})
+    return path
+
+
+def test_z_stack_blocks_equal_the_kernel(tmp_path, capsys):
+    matrix = BleedThroughMatrix(kind="measured", channels=("a", "b", "c"), labels=("P", "Q"),
+                                primary={"P": "a", "Q": "b"},
+                                matrix=np.array([[1.0, 0.2], [0.3, 1.0], [0.1, 0.4]]),
+                                background=np.array([10.0, 12.0, 9.0]), background_source="dark")
+    matrix_path = matrix.save(tmp_path / "m.json")
+    rng = np.random.default_rng(0)
+    data = rng.integers(0, 3000, size=(4, 3, 40, 50)).astype(np.uint16)  # Z C Y X
+    source = _stack_file(tmp_path / "z.ome.tif", data, "ZCYX", "abc")
+    code, _, err = _run(["apply", "--matrix", matrix_path, source, "-o", tmp_path / "out", "--quiet"], capsys)
+    assert code == 0, err
+    result = read_image(tmp_path / "out" / "z.unmixed.ome.tif")
+    assert result.axes == "CZYX" and result.data.shape == (2, 4, 40, 50)
+    expected = Unmixer(matrix.matrix).unmix(np.moveaxis(data, 1, 0), matrix.background)
+    np.testing.assert_array_equal(result.data, expected)
+
+
+def test_nan_pixels_give_nan_and_are_counted(tmp_path, demo_matrix, capsys):
+    data = np.full((3, 20, 20), 150, np.float32)
+    data[1, 3, 4] = np.nan
+    source = _stack_file(tmp_path / "nan.ome.tif", data, "CYX", ["blue450", "green525", "orange600"])
+    code, out, _ = _run(["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "out"], capsys)
+    assert code == 0
+    result = read_image(tmp_path / "out" / "nan.unmixed.ome.tif").data
+    assert np.isnan(result[:, 3, 4]).all() and np.isfinite(result).sum() == 3 * 399
+    assert " 1 " in out.splitlines()[-1]  # the NaN count in the summary table
+
+
+def test_extra_channels_are_ignored_with_a_warning(tmp_path, demo_matrix, capsys):
+    data = np.full((4, 16, 16), 150, np.uint16)
+    source = _stack_file(tmp_path / "x.ome.tif", data, "CYX", ["blue450", "green525", "orange600", "far700"])
+    code, _, err = _run(["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "out"], capsys)
+    assert code == 0 and any(line.startswith("warning:") and "far700" in line for line in err)
+
+
+def _broken_batch(tmp_path, demo):
+    good = tmp_path / "good.ome.tif"
+    good.write_bytes(Path(demo["sample"]).read_bytes())
+    wrong = _stack_file(tmp_path / "wrong.ome.tif", np.zeros((2, 8, 8), np.uint16), "CYX", ["u", "v"])
+    return good, wrong
+
+
+def test_broken_file_in_batch_others_finish(tmp_path, demo, demo_matrix, capsys):
+    good, wrong = _broken_batch(tmp_path, demo)
+    code, _, err = _run(["apply", "--matrix", demo_matrix, wrong, good, "-o", tmp_path / "out"], capsys)
+    assert code == 2
+    errors = [line for line in err if not line.startswith("warning:")]
+    assert len(errors) == 1 and "wrong.ome.tif" in errors[0]
+    assert (tmp_path / "out" / "good.unmixed.ome.tif").exists()
+    assert not (tmp_path / "out" / "wrong.unmixed.ome.tif").exists()
+
+
+def _predicted(tmp_path):
+    matrix = BleedThroughMatrix(kind="predicted", channels=("blue450", "green525", "orange600"),
+                                labels=("Cobaltin", "Fernlight"), primary={"Cobaltin": "blue450", "Fernlight": "green525"},
+                                matrix=np.array([[1.0, 0.02], [0.12, 1.0], [0.03, 0.35]]))
+    return matrix.save(tmp_path / "predicted.json")
+
+
+def _rank_deficient(tmp_path):
+    data = BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
+                              labels=("A", "B"), primary={"A": "blue450", "B": "green525"},
+                              matrix=np.array([[1.0, 1.0], [1.0, 1.0], [0.5, 0.5]]),
+                              background=np.zeros(3), background_source="dark").to_dict()
+    path = tmp_path / "rank.json"
+    path.write_text(json.dumps(data))
+    return path
+
+
+APPLY_BAD_INPUT = {
+    "missing input": (lambda t, d, m: ["--matrix", m, t / "none.tif", "-o", t / "out"], "none.tif"),
+    "glob matches nothing": (lambda t, d, m: ["--matrix", m, str(t / "*.nothing"), "-o", t / "out"], "matches no file"),
+    "corrupted matrix": (lambda t, d, m: ["--matrix", d["sample"], d["sample"], "-o", t / "out"], "sample.ome.tif"),
+    "missing matrix": (lambda t, d, m: ["--matrix", t / "nope.json", d["sample"], "-o", t / "out"], "nope.json"),
+    "channel mismatch": (lambda t, d, m: ["--matrix", m, _stack_file(t / "uv.ome.tif", np.zeros((2, 8, 8), np.uint16),
+                                                                      "CYX", ["u", "v"]), "-o", t / "out"], "uv.ome.tif"),
+    "same output name": (lambda t, d, m: ["--matrix", m, d["sample"], _copy(d["sample"], t / "sample.tif"), "-o",
+                                          t / "out"], "same output name"),
+    "output replaces an input": (lambda t, d, m: ["--matrix", m, _copy(d["sample"], t / "a.tif"),
+                                                  _copy(d["sample"], t / "a.unmixed.ome.tif"), "-o", t],
+                                 "replace an input"),
+    "predicted without background": (lambda t, d, m: ["--matrix", _predicted(t), d["sample"], "-o", t / "out"],
+                                     "--background"),
+    "rank-deficient matrix": (lambda t, d, m: ["--matrix", _rank_deficient(t), d["sample"], "-o", t / "out"],
+                              "rank-deficient"),
+    "bad method": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--method", "magic"], "--method"),
+    "missing background file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--background",
+                                                 t / "dark.tif"], "dark.tif"),
+    "output is a file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", m], "is a file"),
+}
+
+
+def _copy(source, target):
+    Path(target).write_bytes(Path(source).read_bytes())
+    return target
+
+
+@pytest.mark.parametrize("case", list(APPLY_BAD_INPUT))
+def test_apply_bad_input(case, tmp_path, demo, demo_matrix, capsys):
+    build, expected = APPLY_BAD_INPUT[case]
+    argv = ["apply", *build(tmp_path, demo, demo_matrix)]
+    listing = sorted(p.name for p in tmp_path.rglob("*"))
+    before = fingerprint([p for p in tmp_path.rglob("*") if p.is_file()] + [demo["sample"], demo_matrix])
+    code, _, err = _run(argv, capsys)
+    assert code == 2
+    errors = [line for line in err if not line.startswith("warning:")]
+    assert len(errors) == 1 and errors[0].startswith("error: ") and expected in errors[0], err
+    assert sorted(p.name for p in tmp_path.rglob("*")) == listing  # nothing written
+    assert fingerprint([p for p in tmp_path.rglob("*") if p.is_file()] + [demo["sample"], demo_matrix]) == before
+
+
+def test_read_only_output_folder(tmp_path, demo, demo_matrix, capsys, monkeypatch):
+    # Simulated: the session runs as root, which ignores permission bits.
+    out = tmp_path / "ro"
+    out.mkdir()
+    real_access = os.access
+    monkeypatch.setattr(os, "access", lambda p, mode: False if Path(p) == out else real_access(p, mode))
+    code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", out], capsys)
+    assert code == 2 and "not writable" in err[-1]
+    assert list(out.iterdir()) == []
+
+
+def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monkeypatch):
+    # Disk full, simulated: the writer fails midway; no file appears under a final name.
+    real = tifffile.imwrite
+
+    def full_disk(path, data=None, *args, **kwargs):
+        if str(path).endswith(".partial") and kwargs.get("dtype") == np.float32:
+            raise OSError(28, "No space left on device")
+        return real(path, data, *args, **kwargs)
+
+    monkeypatch.setattr(tifffile, "imwrite", full_disk)
+    code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out"], capsys)
+    assert code == 2 and "No space left" in err[-1] and "free space" in err[-1]
+    assert [p.name for p in (tmp_path / "out").iterdir()] == []

@@ -1,0 +1,422 @@
+"""Batch unmixing of acquired stacks: blockwise, streamed, resumable.
+
+Each input (every series of it) is cut into blocks of one (T, Z) position
+holding all channels and the full Y-X plane; each block is read, unmixed and
+written in turn, so memory stays bounded by a few planes whatever the size of
+the stack. Blocks are computed by dask in batches (local threads, or a
+running dask.distributed scheduler), so reading, computing and writing of
+different blocks overlap. The tasks carry only file names and the solver,
+never open file handles, so they run on remote workers too.
+
+Outputs per input ``<name>`` in OUTDIR (see the command-line contract):
+
+- ``<name>.unmixed.ome.tif``: float32 abundances, one channel per label,
+  axes of the input (written Z-major: ``TZCYX``), provenance in the OME
+  description;
+- ``<name>.saturation.ome.tif``: uint8 mask, 1 where any input channel is
+  saturated;
+- ``<name>.residual.ome.tif`` (optional): root-mean-square misfit per pixel.
+
+A finished output records the matrix checksum and a fingerprint of the
+input in its own metadata and in ``unmix-manifest.json``; a rerun keeps
+outputs whose record matches, and refuses (unless ``overwrite``) one made
+from another matrix or input.
+"""
+
+from __future__ import annotations
+
+import errno
+import hashlib
+import json
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from .atomic import atomic_output, write_text_atomic
+from .errors import InputError
+from .images import Image, check_axes, output_stem, read_images, read_provenance
+from .matrix import BleedThroughMatrix
+from .solve import Unmixer
+
+MANIFEST = "unmix-manifest.json"
+# Faults of the output folder that the user can fix: full, read-only, no permission, over quota.
+_WRITE_FAULTS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EDQUOT}
+_FINGERPRINT_BYTES = 1 << 20
+
+
+@dataclass(frozen=True)
+class FileResult:
+    """What happened to one input."""
+
+    input: str
+    output: str | None
+    status: str  # "written", "kept", "failed"
+    message: str = ""
+    nan_pixels: int = 0
+    saturated_pixels: int = 0
+    pixels: int = 0
+
+
+@dataclass(frozen=True)
+class ApplySettings:
+    method: str = "nnls"
+    background: str = "matrix"  # "matrix", "estimate" or a path
+    overwrite: bool = False
+    residual: bool = False
+    saturation: object = None  # one level, or one per channel; None: detected
+    axes: str | None = None
+    channel_names: Sequence[str] | None = None
+    batch_blocks: int = field(default_factory=lambda: max(2, 2 * (os.cpu_count() or 1)))
+
+
+def input_fingerprint(path) -> str:
+    """Cheap identity of an input: size, modification time and hashes of its first and last MiB.
+
+    Reading the whole file again only to hash it would double the I/O of a
+    batch; this detects replaced or edited files in practice.
+    """
+    path = Path(path)
+    files = [path] if path.is_file() else sorted(p for p in path.rglob("*") if p.is_file())
+    digest = hashlib.sha256()
+    for file in files:
+        stat = file.stat()
+        digest.update(f"{file.relative_to(path) if file != path else file.name}:{stat.st_size}:"
+                      f"{stat.st_mtime_ns}".encode())
+        with open(file, "rb") as handle:
+            digest.update(handle.read(_FINGERPRINT_BYTES))
+            if stat.st_size > 2 * _FINGERPRINT_BYTES:
+                handle.seek(-_FINGERPRINT_BYTES, os.SEEK_END)
+                digest.update(handle.read())
+    return digest.hexdigest()
+
+
+def _sample_planes(image: Image, channel: int, most: int = 8) -> np.ndarray:
+    """Up to `most` evenly spaced planes of one channel (a cheap sample of a large stack)."""
+    keys = list(_block_keys(image))
+    chosen = [keys[i] for i in np.unique(np.linspace(0, len(keys) - 1, min(most, len(keys))).astype(int))]
+    c_axis = image.channel_axis
+    planes = []
+    for key in chosen:
+        key = list(key)
+        key[c_axis] = channel
+        planes.append(np.asarray(image.data[tuple(key)]))
+    return np.stack(planes)
+
+
+def _levels(matrix: BleedThroughMatrix, image: Image, saturation) -> np.ndarray:
+    """Saturation level per channel: given, else the lower of the matrix's and the contract's
+    rule on a sample of this input (the sample may saturate where the controls did not)."""
+    from .levels import saturation_level, summarise_channel
+
+    n = len(matrix.channels)
+    if saturation is not None:
+        levels = np.atleast_1d(np.asarray(saturation, dtype=float))
+        if levels.size == 1:
+            levels = np.full(n, levels[0])
+        if levels.size != n:
+            raise InputError(f"--saturation: give one level or {n} (one per matrix channel)")
+        return levels
+    detected = np.array([saturation_level([summarise_channel(_sample_planes(image, c))]) for c in range(n)])
+    return detected if matrix.saturation is None else np.minimum(detected, matrix.saturation)
+
+
+def _background_for(matrix: BleedThroughMatrix, image: Image, choice: str) -> np.ndarray:
+    from .levels import summarise_channel
+
+    if choice == "matrix":
+        if matrix.background is None:
+            raise InputError(f"{image.name}: the matrix has no background (a predicted matrix); "
+                             "give --background estimate or --background PATH")
+        return matrix.background
+    if choice == "estimate":
+        # A sample of planes of every channel: the robust level needs no full pass.
+        return np.array([summarise_channel(_sample_planes(image, c)).background
+                         for c in range(len(matrix.channels))])
+    reference = read_images(choice)[0]
+    missing = [c for c in matrix.channels if c not in reference.channel_names]
+    if missing:
+        raise InputError(f"{choice}: background image lacks channels {missing}; give one imaged in every channel")
+    reference = reference.select_channels(matrix.channels)
+    stack = np.moveaxis(np.asarray(reference.data), reference.channel_axis, 0)
+    return np.array([summarise_channel(stack[c]).median for c in range(stack.shape[0])])
+
+
+def _matched(matrix: BleedThroughMatrix, image: Image) -> Image:
+    missing = [c for c in matrix.channels if c not in image.channel_names]
+    if missing:
+        raise InputError(
+            f"{image.name}: lacks channels {missing} that the matrix needs (it has {list(image.channel_names)}); "
+            "check the channel names or give --channel-names"
+        )
+    extra = [c for c in image.channel_names if c not in matrix.channels]
+    if extra:
+        import warnings
+
+        from .errors import InputWarning
+
+        warnings.warn(f"{image.name}: channels {extra} are not in the matrix and are ignored", InputWarning,
+                      stacklevel=3)
+    return image.select_channels(matrix.channels)
+
+
+def _block_keys(image: Image):
+    """One key per (T, Z) position, selecting all channels and the full plane."""
+    leading = [a for a in image.axes if a not in "CYX"]
+    shape = [image.data.shape[image.axes.index(a)] for a in leading]
+    for position in np.ndindex(*shape):
+        key, it = [], iter(position)
+        for axis in image.axes:
+            key.append(next(it) if axis not in "CYX" else slice(None))
+        yield tuple(key)
+
+
+def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
+                 background, levels, residual: bool):
+    """Read one block from the file, unmix it; returns abundances (K, Y, X) and per-block figures."""
+    import dask
+
+    image = read_images(path, axes=axes, channel_names=channel_names, lazy=True)[series]
+    image = image.select_channels(channels)
+    with dask.config.set(scheduler="synchronous"):
+        block = np.asarray(image.data[key])  # (C, Y, X)
+    saturated = np.zeros(block.shape[1:], np.uint8)
+    for c in range(block.shape[0]):
+        saturated |= block[c] >= levels[c]
+    abundances = unmixer.unmix(block, background)
+    nan = int(np.count_nonzero(np.isnan(abundances[0])))
+    misfit = unmixer.residual(block, abundances, background) if residual else None
+    return abundances, saturated, misfit, nan
+
+
+def _output_names(outdir: Path, stem: str) -> dict:
+    return {"unmixed": outdir / f"{stem}.unmixed.ome.tif", "saturation": outdir / f"{stem}.saturation.ome.tif",
+            "residual": outdir / f"{stem}.residual.ome.tif"}
+
+
+def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerprint: str, settings: ApplySettings,
+                background: np.ndarray, series: int) -> dict:
+    from . import provenance as prov
+
+    return {
+        "command": "apply", "created": prov.utc_now(), "software": prov.software(),
+        "input": {"name": path.name, "path": str(path.resolve()), "fingerprint": fingerprint, "series": series},
+        "matrix": {"sha256": matrix_sha, "contents": matrix.to_dict()},
+        "method": settings.method,
+        "background": {"source": settings.background if settings.background in ("matrix", "estimate")
+                       else str(Path(settings.background).resolve()), "levels": [float(b) for b in background]},
+        "noise_penalty": dict(zip(matrix.labels, map(float, matrix.noise_penalty()))),
+        "condition_number": matrix.condition_number(),
+    }
+
+
+def _same_run(existing: dict | None, matrix_sha: str, fingerprint: str, settings: ApplySettings) -> bool:
+    if not existing:
+        return False
+    return (existing.get("matrix", {}).get("sha256") == matrix_sha
+            and existing.get("input", {}).get("fingerprint") == fingerprint
+            and existing.get("method") == settings.method)
+
+
+def _planes_writer(blocks, n_labels: int):
+    """Yield output planes (Z-major: for each block, its K label planes) from computed blocks."""
+    for block in blocks:
+        for k in range(n_labels):
+            yield block[k]
+
+
+def _write_outputs(image: Image, matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path, series: int,
+                   settings: ApplySettings, background, levels, names: dict, provenance: dict, compute):
+    """Compute the blocks of one image in batches and stream them into the output files."""
+    import tifffile
+
+    keys = list(_block_keys(image))
+    ny, nx = image.data.shape[-2:]
+    leading_axes = "".join(a for a in image.axes if a not in "CYX")
+    out_axes = leading_axes + "CYX"
+    leading_shape = tuple(image.data.shape[image.axes.index(a)] for a in leading_axes)
+    totals = {"nan": 0, "saturated": 0}
+    saturation_planes, residual_planes = [], []
+
+    def blocks():
+        for start in range(0, len(keys), settings.batch_blocks):
+            batch = keys[start:start + settings.batch_blocks]
+            results = compute([(str(path), series, settings.axes, settings.channel_names, list(matrix.channels), key,
+                                unmixer, background, levels, settings.residual) for key in batch])
+            for abundances, saturated, misfit, nan in results:
+                totals["nan"] += nan
+                totals["saturated"] += int(saturated.sum())
+                saturation_planes.append(saturated)
+                if misfit is not None:
+                    residual_planes.append(misfit)
+                yield abundances
+
+    metadata = {"axes": out_axes, "Channel": {"Name": list(matrix.labels)},
+                "Description": json.dumps(provenance, sort_keys=True)}
+    for axis, size in image.pixel_size.items():
+        metadata[f"PhysicalSize{axis}"] = float(size)
+    shape = leading_shape + (len(matrix.labels), ny, nx)
+    with atomic_output(names["unmixed"]) as tmp:
+        tifffile.imwrite(tmp, _planes_writer(blocks(), len(matrix.labels)), shape=shape, dtype=np.float32,
+                         ome=True, metadata=metadata, photometric="minisblack",
+                         bigtiff=np.prod(shape, dtype=np.float64) * 4 > 2**31)
+    mask_axes = leading_axes + "CYX"
+    mask = np.stack(saturation_planes).reshape(leading_shape + (1, ny, nx))
+    mask_meta = {"axes": mask_axes, "Channel": {"Name": ["saturated"]},
+                 "Description": json.dumps({"of": names["unmixed"].name, "levels": [float(v) for v in levels]})}
+    with atomic_output(names["saturation"]) as tmp:
+        tifffile.imwrite(tmp, mask, ome=True, metadata=mask_meta, photometric="minisblack", compression="zlib")
+    if settings.residual:
+        misfit = np.stack(residual_planes).reshape(leading_shape + (1, ny, nx))
+        with atomic_output(names["residual"]) as tmp:
+            tifffile.imwrite(tmp, misfit, ome=True, photometric="minisblack",
+                             metadata={"axes": mask_axes, "Channel": {"Name": ["residual_rms"]}})
+    return totals
+
+
+def _local_compute(argument_lists):
+    import dask
+
+    tasks = [dask.delayed(_unmix_block, pure=False)(*arguments) for arguments in argument_lists]
+    return dask.compute(*tasks, scheduler="threads")
+
+
+def _distributed_compute(client):
+    def compute(argument_lists):
+        futures = [client.submit(_unmix_block, *arguments, pure=False) for arguments in argument_lists]
+        return client.gather(futures)
+
+    return compute
+
+
+def plan_outputs(inputs: Sequence, outdir: Path) -> list[tuple[Path, str]]:
+    """(input, output stem) per input; refuses two inputs that would give the same name."""
+    seen: dict[str, Path] = {}
+    plan = []
+    for raw in inputs:
+        path = Path(raw)
+        stem = output_stem(path)
+        if not stem or stem in (".", ".."):
+            raise InputError(f"{path}: cannot name an output after this file; rename it")
+        if stem in seen:
+            raise InputError(f"{path}: gives the same output name {stem!r} as {seen[stem]}; "
+                             "apply them in separate runs or output folders")
+        seen[stem] = path
+        plan.append((path, stem))
+    return plan
+
+
+def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settings: ApplySettings | None = None,
+                 scheduler: str | None = None, matrix_sha: str | None = None, progress=None) -> list[FileResult]:
+    """Unmix every input with `matrix`, writing into `outdir`; one FileResult per input.
+
+    A bad input file is reported in its FileResult and the batch goes on;
+    problems that concern the whole batch (the matrix, the output folder,
+    name collisions) raise InputError before anything is written.
+    """
+    settings = settings or ApplySettings()
+    outdir = Path(outdir)
+    if settings.axes is not None:
+        try:
+            check_axes(settings.axes, "--axes")
+        except ValueError as exc:
+            raise InputError(str(exc)) from None
+    try:
+        unmixer = Unmixer(matrix.matrix, method=settings.method)
+    except ValueError as exc:
+        raise InputError(f"matrix: {exc}; measure or describe more channels, or fewer labels") from None
+    matrix_sha = matrix_sha or matrix.sha256()
+    plan = plan_outputs(inputs, outdir)
+    resolved_inputs = {Path(p).resolve() for p, _ in plan}
+    for path, stem in plan:
+        for name in _output_names(outdir, stem).values():
+            if name.resolve() in resolved_inputs:
+                raise InputError(f"{name}: the output would replace an input; choose another output folder")
+    if settings.background not in ("matrix", "estimate") and not Path(settings.background).exists():
+        raise InputError(f"--background {settings.background}: no such file; give matrix, estimate or a path")
+    # The folder itself is made only when the first output is written.
+    existing = outdir if outdir.exists() else next((p for p in outdir.parents if p.exists()), Path("."))
+    if not existing.is_dir() or not os.access(existing, os.W_OK):
+        raise InputError(f"{outdir}: output folder is not writable; choose another -o")
+
+    if scheduler:
+        try:
+            from distributed import Client
+
+            client = Client(scheduler, timeout="10s")
+        except (OSError, TimeoutError) as exc:
+            raise InputError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); "
+                             "check the address and that the scheduler is running") from None
+        compute = _distributed_compute(client)
+    else:
+        client, compute = None, _local_compute
+
+    manifest_path = outdir / MANIFEST
+    results = []
+    try:
+        for index, (path, stem) in enumerate(plan):
+            if progress:
+                progress(index, len(plan), path)
+            results.append(_apply_one(matrix, unmixer, matrix_sha, path, stem, outdir, settings, compute))
+            if results[-1].status == "written":
+                _record(manifest_path, results[-1], matrix_sha, settings)
+    finally:
+        if client is not None:
+            client.close()
+    return results
+
+
+def _record(manifest_path: Path, result: FileResult, matrix_sha: str, settings: ApplySettings) -> None:
+    try:
+        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+        if not isinstance(manifest, dict) or not isinstance(manifest.get("outputs"), dict):
+            raise ValueError
+    except (OSError, ValueError):
+        manifest = {"format": "unmix-manifest", "version": 1, "outputs": {}}
+    from .provenance import utc_now
+
+    manifest["outputs"][Path(result.output).name] = {
+        "input": result.input, "matrix_sha256": matrix_sha, "method": settings.method, "finished": utc_now(),
+        "nan_pixels": result.nan_pixels, "saturated_pixels": result.saturated_pixels,
+    }
+    write_text_atomic(manifest_path, json.dumps(manifest, indent=2) + "\n")
+
+
+def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path, settings: ApplySettings,
+               compute) -> FileResult:
+    names = _output_names(outdir, stem)
+    try:
+        images = read_images(path, axes=settings.axes, channel_names=settings.channel_names, lazy=True)
+        fingerprint = input_fingerprint(path)
+        if names["unmixed"].exists():
+            try:
+                existing = read_provenance(names["unmixed"])
+            except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
+                existing = None
+            if _same_run(existing, matrix_sha, fingerprint, settings) and names["saturation"].exists():
+                return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
+            if not settings.overwrite:
+                raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
+                                 "pass --overwrite to replace it or choose another -o")
+        if len(images) > 1:
+            raise InputError(f"{path}: holds {len(images)} series; multi-series output is not supported yet, "
+                             "export each series to its own file")
+        image = _matched(matrix, images[0])
+        background = _background_for(matrix, image, settings.background)
+        levels = _levels(matrix, image, settings.saturation)
+        provenance = _provenance(matrix, matrix_sha, path, fingerprint, settings, background, 0)
+        outdir.mkdir(parents=True, exist_ok=True)
+        totals = _write_outputs(image, matrix, unmixer, path, 0, settings, background, levels, names, provenance,
+                                compute)
+        pixels = int(np.prod([image.data.shape[image.axes.index(a)] for a in image.axes if a != "C"]))
+        return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],
+                          saturated_pixels=totals["saturated"], pixels=pixels)
+    except InputError as exc:
+        return FileResult(str(path), None, "failed", str(exc))
+    except OSError as exc:
+        if exc.errno not in _WRITE_FAULTS:
+            raise
+        return FileResult(str(path), None, "failed",
+                          f"{names['unmixed']}: cannot write ({exc.strerror}); free space or choose another -o")
