@@ -207,3 +207,29 @@ def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monk
     code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out"], capsys)
     assert code == 2 and "No space left" in err[-1] and "free space" in err[-1]
     assert [p.name for p in (tmp_path / "out").iterdir()] == []
+
+
+@pytest.mark.slow
+def test_dask_cluster_gives_the_same_output_as_local_threads(tmp_path, demo, demo_matrix, capsys):
+    # A real dask.distributed LocalCluster with two worker processes on loopback.
+    from distributed import LocalCluster
+
+    rng = np.random.default_rng(2)
+    stack = rng.integers(90, 3000, size=(3, 3, 64, 64)).astype(np.uint16)  # Z C Y X
+    source = _stack_file(tmp_path / "stack.ome.tif", stack, "ZCYX", ["blue450", "green525", "orange600"])
+    assert _run(["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "local", "--quiet"], capsys)[0] == 0
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        code, _, err = _run(["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "cluster", "--quiet",
+                             "--scheduler", cluster.scheduler_address], capsys)
+    assert code == 0, err
+    local = read_image(tmp_path / "local" / "stack.unmixed.ome.tif").data
+    remote = read_image(tmp_path / "cluster" / "stack.unmixed.ome.tif").data
+    np.testing.assert_array_equal(local, remote)
+
+
+def test_unreachable_scheduler_is_a_clear_error(tmp_path, demo, demo_matrix, capsys):
+    code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out",
+                         "--scheduler", "tcp://127.0.0.1:9"], capsys)
+    assert code == 2 and "--scheduler" in err[-1]
+    assert not (tmp_path / "out").exists()

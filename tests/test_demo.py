@@ -55,6 +55,8 @@ def test_run_demo_writes_results(tmp_path, capsys):
     result = run_demo(tmp_path / "out")
     assert result["matrix"].exists() and result["csv"].exists()
     assert result["truth_inside_ci"] == result["coefficients"] == 9
+    assert result["unmixed"].exists()
+    assert all(error < 40 for error in result["rms_error"].values())  # shot noise of ~1000 e- peaks
     assert "Bleed-through matrix" in capsys.readouterr().out
 
 

@@ -345,7 +345,7 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
         try:
             from distributed import Client
 
-            client = Client(scheduler, timeout="10s")
+            client = Client(scheduler, timeout="10s", set_as_default=False)
         except (OSError, TimeoutError) as exc:
             raise InputError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); "
                              "check the address and that the scheduler is running") from None

@@ -259,9 +259,23 @@ def run_demo(outdir, out=None) -> dict:
     inside = (matrix.ci95_low <= true + 1e-12) & (true - 1e-12 <= matrix.ci95_high)
     print(f"\nTrue coefficients inside the measured 95 % interval: {int(inside.sum())} of {inside.size}",
           file=out)
-    print(f"\nMatrix:  {matrix_path}\nTable:   {csv_path}", file=out)
-    return {"matrix": matrix_path, "csv": csv_path, "truth_inside_ci": int(inside.sum()),
-            "coefficients": int(inside.size)}
+
+    from .batch import apply_matrix
+    from .images import read_image
+
+    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed")
+    if result.status == "failed":
+        raise RuntimeError(f"demo sample failed to unmix: {result.message}")
+    unmixed = read_image(result.output).data
+    true_abundances = read_image(inputs["sample"].with_name("sample_truth.ome.tif")).data
+    print("\nUnmixed sample against the simulated truth (RMS error, ADU):", file=out)
+    errors = {}
+    for k, label in enumerate(matrix.labels):
+        errors[label] = float(np.sqrt(np.mean((unmixed[k] - true_abundances[k]) ** 2)))
+        print(f"  {label}: {errors[label]:.1f} (peak signal {true_abundances[k].max():.0f})", file=out)
+    print(f"\nMatrix:   {matrix_path}\nTable:    {csv_path}\nUnmixed:  {result.output}", file=out)
+    return {"matrix": matrix_path, "csv": csv_path, "unmixed": Path(result.output),
+            "truth_inside_ci": int(inside.sum()), "coefficients": int(inside.size), "rms_error": errors}
 
 
 def main(argv=None) -> int:
