@@ -12,7 +12,7 @@ import tifffile
 
 from conftest import fingerprint
 from unmix.cli import main
-from unmix.images import Image, read_image, read_provenance, write_ome_tiff
+from unmix.images import read_image, read_provenance
 from unmix.matrix import BleedThroughMatrix, load_matrix
 from unmix.measure import MeasureSettings, measure_files
 from unmix.solve import Unmixer

@@ -330,7 +330,7 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
     resolved_inputs = {Path(p).resolve() for p, _ in plan}
-    for path, stem in plan:
+    for _, stem in plan:
         for name in _output_names(outdir, stem).values():
             if name.resolve() in resolved_inputs:
                 raise InputError(f"{name}: the output would replace an input; choose another output folder")

@@ -49,7 +49,6 @@ References
 from __future__ import annotations
 
 import math
-import os
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -61,6 +60,7 @@ from .errors import InputError, InputWarning
 from .images import Image, read_images
 from .levels import ChannelSummary, saturation_level, summarise_channel
 from .matrix import BleedThroughMatrix
+from .threads import THREADS, map_in_threads
 
 
 @dataclass(frozen=True)
@@ -193,7 +193,6 @@ def _registration_shift(reference: np.ndarray, moving: np.ndarray) -> np.ndarray
     return np.asarray(shift, dtype=float)
 
 
-_THREADS = max(1, min(8, os.cpu_count() or 1))
 # Misregistration is flagged only where the leak is large enough both to
 # locate the correlation peak reliably and to matter (a rule of this tool).
 _REGISTRATION_MIN_LEAK = 0.05
@@ -201,7 +200,7 @@ _REGISTRATION_MIN_LEAK = 0.05
 
 def _summaries(stack: np.ndarray) -> list[ChannelSummary]:
     """Level summaries of every channel of a (C, ...) stack, channels in threads."""
-    return _in_threads(summarise_channel, [(stack[c],) for c in range(stack.shape[0])])
+    return map_in_threads(summarise_channel, [(stack[c],) for c in range(stack.shape[0])])
 
 
 def _merge_blocks(stats: np.ndarray, blocks_y: int, blocks_x: int, max_blocks: int) -> np.ndarray:
@@ -213,16 +212,6 @@ def _merge_blocks(stats: np.ndarray, blocks_y: int, blocks_x: int, max_blocks: i
         padded[:ny, :nx] = grid
         grid = padded.reshape(padded.shape[0] // 2, 2, padded.shape[1] // 2, 2, -1).sum(axis=(1, 3))
     return grid.reshape(-1, stats.shape[1])
-
-
-def _in_threads(kernel, argument_lists):
-    """Run a GIL-releasing kernel on each argument list, in threads; results in order."""
-    if len(argument_lists) == 1 or _THREADS == 1:
-        return [kernel(*arguments) for arguments in argument_lists]
-    from concurrent.futures import ThreadPoolExecutor
-
-    with ThreadPoolExecutor(max_workers=min(_THREADS, len(argument_lists))) as pool:
-        return list(pool.map(lambda arguments: kernel(*arguments), argument_lists))
 
 
 def _crop_for_registration(shape, usable: np.ndarray, size: int = 192):
@@ -263,8 +252,8 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
     threshold = (summaries[primary].background - background[primary]) + settings.min_snr * noise
 
     # The kernels release the GIL: split rows (then usable pixels) among threads.
-    bounds = np.linspace(0, ny, _THREADS + 1).astype(int)
-    parts = _in_threads(select_pixels, [
+    bounds = np.linspace(0, ny, THREADS + 1).astype(int)
+    parts = map_in_threads(select_pixels, [
         (stack, background, levels, primary, float(threshold), stack.dtype.kind == "f", int(a), int(b))
         for a, b in zip(bounds[:-1], bounds[1:]) if b > a])
     usable = np.concatenate([p[0] for p in parts])
@@ -285,8 +274,8 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
     # The dim/bright split needs only an approximate median: a strided sample will do.
     split = float(np.median(proxies[:: max(1, proxies.size // 65536)])) if proxies.size else 0.0
     n_stats = _N_SCALARS + len(_PER_CHANNEL) * n_channels
-    cuts = np.linspace(0, usable.size, _THREADS + 1).astype(int)
-    stats = sum(_in_threads(block_statistics, [
+    cuts = np.linspace(0, usable.size, THREADS + 1).astype(int)
+    stats = sum(map_in_threads(block_statistics, [
         (stack, background, primary, usable[a:b], proxies[a:b], split, settings.block_size, n_stats, _N_SCALARS)
         for a, b in zip(cuts[:-1], cuts[1:])]))
     stats = _merge_blocks(stats, -(-ny // settings.block_size), -(-nx // settings.block_size), settings.max_blocks)

@@ -23,10 +23,9 @@ objective ``-z_S . a_S / 2``; the solver keeps the best such candidate, so
 even where rounding makes every KKT test fail (ill-conditioned M) the answer
 is the exact enumeration optimum, never an iterate. No residual is formed.
 
-The products ``z = M^T (y - b)`` for a whole block are one matrix product
-(BLAS, the C x K part of the work); the compiled kernel (numba, releasing
-the GIL so that dask threads run it in parallel) then does only K x K work
-per pixel, in float64. Measured on this machine for C=4, K=3 and 16 Mpx of
+The compiled kernel (numba, releasing the GIL so that threads run it in
+parallel) forms ``z`` per pixel from the stored pixel values, in float64,
+with no temporary arrays, then does K x K work per pixel. Measured on this machine for C=4, K=3 and 16 Mpx of
 float32 with realistic noise: see ``tests/benchmarks/bench_solve.py``.
 
 References
@@ -45,9 +44,10 @@ from functools import cached_property
 
 import numpy as np
 
+from .threads import map_in_threads
+
 MAX_LABELS = 8
 METHODS = ("nnls", "ls")
-_CHUNK = 1 << 15
 
 
 @dataclass(frozen=True)
@@ -88,11 +88,6 @@ class Unmixer:
         return self.matrix.T @ self.matrix
 
     @cached_property
-    def ls_operator(self) -> np.ndarray:
-        """``(M^T M)^-1``, applied to ``z`` for unconstrained least squares."""
-        return np.linalg.inv(self.gram)
-
-    @cached_property
     def support_inverses(self) -> np.ndarray:
         """``inverses[mask]``: (G_SS)^-1 embedded in K x K zeros, for every support bitmask."""
         k = self.n_labels
@@ -109,10 +104,12 @@ class Unmixer:
         masks = sorted(range(1, 1 << k), key=lambda m: (-bin(m).count("1"), m))
         return np.array(masks + [0], dtype=np.int64)
 
-    def unmix(self, pixels: np.ndarray, background=None) -> np.ndarray:
+    def unmix(self, pixels: np.ndarray, background=None, threads: int = 1) -> np.ndarray:
         """Abundances for pixels given channel-first, shape (C, ...) -> (K, ...), float32.
 
-        Pixels with a NaN in any channel give NaN in every label.
+        Pixels with a NaN in any channel give NaN in every label. `threads`
+        splits the pixels among threads (leave 1 inside dask tasks, which are
+        already parallel).
         """
         pixels = np.asarray(pixels)
         shape = pixels.shape[1:]
@@ -120,20 +117,19 @@ class Unmixer:
         if y.shape[0] != self.matrix.shape[0]:
             raise ValueError(f"pixels have {y.shape[0]} channels, the matrix {self.matrix.shape[0]}")
         b = np.zeros(self.matrix.shape[0]) if background is None else np.asarray(background, dtype=np.float64)
-        offset = (self.matrix.T @ b)[:, None]
+        from .solve_kernels import unmix_pixels
+
+        offset = self.matrix.T @ b
         abundances = np.empty((self.n_labels, y.shape[1]), np.float32)
-        if self.method == "nnls":
-            from .solve_kernels import nnls_from_normal_equations
-        # Chunks small enough for the float64 temporaries to stay in cache.
-        for start in range(0, y.shape[1], _CHUNK):
-            chunk = slice(start, start + _CHUNK)
-            # z = M^T (y - b) = M^T y - M^T b: one BLAS product in float64.
-            z = self.matrix.T @ y[:, chunk].astype(np.float64) - offset
-            if self.method == "ls":
-                abundances[:, chunk] = self.ls_operator @ z
-            else:
-                nnls_from_normal_equations(z, self.gram, self.support_inverses, self.support_order,
-                                           abundances[:, chunk])
+        if y.dtype not in (np.float32, np.float64, np.uint16, np.uint8):
+            y = y.astype(np.float64)
+        constrained = self.method == "nnls"
+        mt = np.ascontiguousarray(self.matrix.T)
+        bounds = np.linspace(0, y.shape[1], max(1, threads) + 1).astype(int)
+        # The kernel releases the GIL: split the pixels among threads.
+        map_in_threads(unmix_pixels, [
+            (y[:, lo:hi], mt, offset, self.gram, self.support_inverses, self.support_order, constrained,
+             abundances[:, lo:hi]) for lo, hi in zip(bounds[:-1], bounds[1:]) if hi > lo])
         return abundances.reshape((self.n_labels,) + shape)
 
     def residual(self, pixels: np.ndarray, abundances: np.ndarray, background=None) -> np.ndarray:

@@ -43,7 +43,7 @@ def _is_feasible(mask, a, n_labels, tol_a):
     return True
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, inline="always")
 def _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, x, s):
     """Lawson-Hanson active-set iterations on the normal equations (Bro & de Jong's FNNLS),
     each solve a lookup of the precomputed support inverse. Returns True on convergence."""
@@ -88,84 +88,98 @@ def _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, x, s):
     return False
 
 
-@njit(cache=True, nogil=True)
-def nnls_from_normal_equations(z, gram, inverses, order, out):
-    """Exact NNLS per column of ``z = M^T (y - b)``, written to `out` (K, N) float32.
+@njit(cache=True, nogil=True, inline="always")
+def _solve_pixel(zk, gram, inverses, order, a, best, spare):
+    """Exact NNLS for one pixel's ``z`` (finite), into `a`.
 
-    Per pixel: the unconstrained solution; else the positive part of its
-    support; else active-set iterations; the answer of each is accepted only
-    if it satisfies the KKT conditions, and should all fail (rounding on an
-    ill-conditioned M) every support is enumerated, keeping the feasible one
-    of lowest objective.
-
-    Parameters
-    ----------
-    z : float64 (K, N)
-    gram : float64 (K, K), ``M^T M``
-    inverses : float64 (2^K, K, K), inverse of G on each support, embedded
-    order : int64 (2^K,), supports by decreasing size, the empty one last
-    out : float32 (K, N)
+    The unconstrained solution; else the positive part of its support; else
+    active-set iterations; each accepted only if it satisfies the KKT
+    conditions. Should all fail (rounding on an ill-conditioned M), every
+    support is enumerated, keeping the feasible one of lowest objective.
     """
-    n_labels, n_pixels = z.shape
+    n_labels = zk.size
+    full = (1 << n_labels) - 1
+    scale = 0.0
+    for j in range(n_labels):
+        scale = max(scale, abs(zk[j]))
+    _solve_support(inverses, full, zk, a, n_labels)
+    amax = 0.0
+    positive = 0
+    for j in range(n_labels):
+        amax = max(amax, abs(a[j]))
+        if a[j] > 0:
+            positive |= 1 << j
+    tol_a = _RELATIVE_TOLERANCE * amax
+    tol_g = _RELATIVE_TOLERANCE * scale
+    if positive == full:
+        return
+    if positive != 0:
+        _solve_support(inverses, positive, zk, a, n_labels)
+        if _is_optimal(positive, a, zk, gram, n_labels, tol_a, tol_g):
+            return
+    if _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, a, spare):
+        support = 0
+        for j in range(n_labels):
+            if a[j] > 0:
+                support |= 1 << j
+        if _is_optimal(support, a, zk, gram, n_labels, tol_a, tol_g):
+            return
+    # Enumerate supports; keep the feasible one of lowest objective
+    # (-z.a/2 at each support's optimum); the empty support gives 0.
+    best_objective = 0.0
+    for j in range(n_labels):
+        best[j] = 0.0
+    for s in range(order.size):
+        mask = order[s]
+        _solve_support(inverses, mask, zk, a, n_labels)
+        if not _is_feasible(mask, a, n_labels, tol_a):
+            continue
+        objective = 0.0
+        for j in range(n_labels):
+            objective -= 0.5 * zk[j] * a[j]
+        if objective < best_objective:
+            best_objective = objective
+            for j in range(n_labels):
+                best[j] = a[j]
+        if _is_optimal(mask, a, zk, gram, n_labels, tol_a, tol_g):
+            break
+    for j in range(n_labels):
+        a[j] = best[j]
+
+
+@njit(cache=True, nogil=True)
+def unmix_pixels(y, mt, offset, gram, inverses, order, constrained, out):
+    """Abundances per column of `y` (C, N), written to `out` (K, N) float32.
+
+    ``z = M^T y - M^T b`` is formed per pixel in float64 (`mt` = M^T,
+    `offset` = M^T b), then solved exactly with ``a >= 0`` (`constrained`)
+    or without. A pixel with a NaN in any channel gives NaN in every label.
+    """
+    n_labels = mt.shape[0]
+    n_channels, n_pixels = y.shape
     full = (1 << n_labels) - 1
     zk = np.empty(n_labels)
     a = np.empty(n_labels)
     best = np.empty(n_labels)
     spare = np.empty(n_labels)
     for i in range(n_pixels):
-        scale = 0.0
         finite = True
         for j in range(n_labels):
-            zk[j] = z[j, i]
-            if not np.isfinite(zk[j]):
+            total = -offset[j]
+            for c in range(n_channels):
+                total += mt[j, c] * y[c, i]
+            zk[j] = total
+            if not np.isfinite(total):
                 finite = False
-            scale = max(scale, abs(zk[j]))
         if not finite:
             for j in range(n_labels):
                 out[j, i] = np.nan
             continue
-        _solve_support(inverses, full, zk, a, n_labels)
-        amax = 0.0
-        positive = 0
-        for j in range(n_labels):
-            amax = max(amax, abs(a[j]))
-            if a[j] > 0:
-                positive |= 1 << j
-        tol_a = _RELATIVE_TOLERANCE * amax
-        tol_g = _RELATIVE_TOLERANCE * scale
-        done = positive == full
-        if not done and positive != 0:
-            _solve_support(inverses, positive, zk, a, n_labels)
-            done = _is_optimal(positive, a, zk, gram, n_labels, tol_a, tol_g)
-        if not done:
-            converged = _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, a, spare)
-            if converged:
-                support = 0
-                for j in range(n_labels):
-                    if a[j] > 0:
-                        support |= 1 << j
-                done = _is_optimal(support, a, zk, gram, n_labels, tol_a, tol_g)
-        if not done:
-            # Enumerate supports; keep the feasible one of lowest objective
-            # (-z.a/2 at each support's optimum); the empty support gives 0.
-            best_objective = 0.0
+        if constrained:
+            _solve_pixel(zk, gram, inverses, order, a, best, spare)
             for j in range(n_labels):
-                best[j] = 0.0
-            for s in range(order.size):
-                mask = order[s]
-                _solve_support(inverses, mask, zk, a, n_labels)
-                if not _is_feasible(mask, a, n_labels, tol_a):
-                    continue
-                objective = 0.0
-                for j in range(n_labels):
-                    objective -= 0.5 * zk[j] * a[j]
-                if objective < best_objective:
-                    best_objective = objective
-                    for j in range(n_labels):
-                        best[j] = a[j]
-                if _is_optimal(mask, a, zk, gram, n_labels, tol_a, tol_g):
-                    break
+                out[j, i] = max(a[j], 0.0)
+        else:
+            _solve_support(inverses, full, zk, a, n_labels)
             for j in range(n_labels):
-                a[j] = best[j]
-        for j in range(n_labels):
-            out[j, i] = max(a[j], 0.0)
+                out[j, i] = a[j]

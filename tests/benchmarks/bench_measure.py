@@ -14,10 +14,10 @@ import json
 import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
+from timing import best_of
 
 CHANNELS = ("c0", "c1", "c2", "c3")
 
@@ -44,15 +44,6 @@ def make_controls(folder: Path, size: int) -> dict:
         tifffile.imwrite(path, data, ome=True, metadata={"axes": "CYX", "Channel": {"Name": list(CHANNELS)}})
         controls[f"L{k}"] = [str(path)]
     return controls
-
-
-def best_of(repeats, function):
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        function()
-        times.append(time.perf_counter() - start)
-    return min(times)
 
 
 def _status_kib(field: str) -> int:
