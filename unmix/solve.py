@@ -127,9 +127,10 @@ class Unmixer:
         mt = np.ascontiguousarray(self.matrix.T)
         bounds = np.linspace(0, y.shape[1], max(1, threads) + 1).astype(int)
         # The kernel releases the GIL: split the pixels among threads.
+        y = np.ascontiguousarray(y)
         map_in_threads(unmix_pixels, [
-            (y[:, lo:hi], mt, offset, self.gram, self.support_inverses, self.support_order, constrained,
-             abundances[:, lo:hi]) for lo, hi in zip(bounds[:-1], bounds[1:]) if hi > lo])
+            (y, mt, offset, self.gram, self.support_inverses, self.support_order, constrained, abundances,
+             int(lo), int(hi)) for lo, hi in zip(bounds[:-1], bounds[1:]) if hi > lo])
         return abundances.reshape((self.n_labels,) + shape)
 
     def residual(self, pixels: np.ndarray, abundances: np.ndarray, background=None) -> np.ndarray:

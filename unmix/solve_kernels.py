@@ -43,7 +43,7 @@ def _is_feasible(mask, a, n_labels, tol_a):
     return True
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, x, s):
     """Lawson-Hanson active-set iterations on the normal equations (Bro & de Jong's FNNLS),
     each solve a lookup of the precomputed support inverse. Returns True on convergence."""
@@ -88,7 +88,7 @@ def _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, x, s):
     return False
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def _solve_pixel(zk, gram, inverses, order, a, best, spare):
     """Exact NNLS for one pixel's ``z`` (finite), into `a`.
 
@@ -148,8 +148,11 @@ def _solve_pixel(zk, gram, inverses, order, a, best, spare):
 
 
 @njit(cache=True, nogil=True)
-def unmix_pixels(y, mt, offset, gram, inverses, order, constrained, out):
-    """Abundances per column of `y` (C, N), written to `out` (K, N) float32.
+def unmix_pixels(y, mt, offset, gram, inverses, order, constrained, out, start, stop):
+    """Abundances for columns [start, stop) of `y` (C, N), written to `out` (K, N) float32.
+
+    Whole arrays and a column range, not slices, are passed so that threads
+    share C-contiguous arrays (numba compiles slower code for strided views).
 
     ``z = M^T y - M^T b`` is formed per pixel in float64 (`mt` = M^T,
     `offset` = M^T b), then solved exactly with ``a >= 0`` (`constrained`)
@@ -162,7 +165,7 @@ def unmix_pixels(y, mt, offset, gram, inverses, order, constrained, out):
     a = np.empty(n_labels)
     best = np.empty(n_labels)
     spare = np.empty(n_labels)
-    for i in range(n_pixels):
+    for i in range(start, stop):
         finite = True
         for j in range(n_labels):
             total = -offset[j]
@@ -175,11 +178,34 @@ def unmix_pixels(y, mt, offset, gram, inverses, order, constrained, out):
             for j in range(n_labels):
                 out[j, i] = np.nan
             continue
-        if constrained:
-            _solve_pixel(zk, gram, inverses, order, a, best, spare)
-            for j in range(n_labels):
-                out[j, i] = max(a[j], 0.0)
-        else:
-            _solve_support(inverses, full, zk, a, n_labels)
-            for j in range(n_labels):
-                out[j, i] = a[j]
+        # The unconstrained solution, written out directly: with LS, or with
+        # NNLS when it is already non-negative (the most common case).
+        negative = False
+        for j in range(n_labels):
+            total = 0.0
+            for m in range(n_labels):
+                total += inverses[full, j, m] * zk[m]
+            out[j, i] = total
+            negative |= total < 0.0
+        if not (constrained and negative):
+            continue
+        # Most of the rest: the positive part of the unconstrained support.
+        positive = 0
+        amax = 0.0
+        scale = 0.0
+        for j in range(n_labels):
+            value = out[j, i]
+            amax = max(amax, abs(value))
+            scale = max(scale, abs(zk[j]))
+            if value > 0:
+                positive |= 1 << j
+        if positive != 0:
+            _solve_support(inverses, positive, zk, a, n_labels)
+            if _is_optimal(positive, a, zk, gram, n_labels, _RELATIVE_TOLERANCE * amax,
+                           _RELATIVE_TOLERANCE * scale):
+                for j in range(n_labels):
+                    out[j, i] = max(a[j], 0.0)
+                continue
+        _solve_pixel(zk, gram, inverses, order, a, best, spare)
+        for j in range(n_labels):
+            out[j, i] = max(a[j], 0.0)
