@@ -70,3 +70,21 @@ def write_text_atomic(final: str | os.PathLike, text: str) -> None:
     """Write `text` (UTF-8) to `final` atomically."""
     with atomic_output(final) as tmp:
         tmp.write_text(text, encoding="utf-8")
+
+
+def remove_stale_temporaries(final: str | os.PathLike) -> list[Path]:
+    """Remove temporaries of `final` left by processes that no longer run (killed runs)."""
+    final = Path(final)
+    removed = []
+    for tmp in final.parent.glob(f".{final.name}.*{PARTIAL_SUFFIX}"):
+        owner = tmp.name[len(final.name) + 2:].split("-", 1)[0]
+        if not owner.isdigit() or int(owner) == os.getpid():
+            continue
+        try:
+            os.kill(int(owner), 0)
+        except ProcessLookupError:
+            _remove(tmp)
+            removed.append(tmp)
+        except PermissionError:
+            pass  # alive, another user's process
+    return removed

@@ -35,7 +35,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .atomic import atomic_output, write_text_atomic
+from .atomic import atomic_output, remove_stale_temporaries, write_text_atomic
 from .errors import InputError
 from .images import Image, check_axes, output_stem, read_images, read_provenance
 from .matrix import BleedThroughMatrix
@@ -395,11 +395,14 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
                 existing = read_provenance(names["unmixed"])
             except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
                 existing = None
-            if _same_run(existing, matrix_sha, fingerprint, settings) and names["saturation"].exists():
+            same = _same_run(existing, matrix_sha, fingerprint, settings)
+            complete = names["saturation"].exists() and (names["residual"].exists() or not settings.residual)
+            if same and complete:
                 return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
-            if not settings.overwrite:
+            if not same and not settings.overwrite:
                 raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
                                  "pass --overwrite to replace it or choose another -o")
+            # Same run, interrupted before its mask was written: done again below.
         if len(images) > 1:
             raise InputError(f"{path}: holds {len(images)} series; multi-series output is not supported yet, "
                              "export each series to its own file")
@@ -408,6 +411,8 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
         levels = _levels(matrix, image, settings.saturation)
         provenance = _provenance(matrix, matrix_sha, path, fingerprint, settings, background, 0)
         outdir.mkdir(parents=True, exist_ok=True)
+        for name in names.values():
+            remove_stale_temporaries(name)
         totals = _write_outputs(image, matrix, unmixer, path, 0, settings, background, levels, names, provenance,
                                 compute)
         pixels = int(np.prod([image.data.shape[image.axes.index(a)] for a in image.axes if a != "C"]))
