@@ -195,18 +195,40 @@ def test_read_only_output_folder(tmp_path, demo, demo_matrix, capsys, monkeypatc
 
 
 def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monkeypatch):
-    # Disk full, simulated: the writer fails midway; no file appears under a final name.
-    real = tifffile.imwrite
+    # Disk full, simulated: writing fails after the first plane; no file appears under a final name.
+    import unmix.batch as batch
 
-    def full_disk(path, data=None, *args, **kwargs):
-        if str(path).endswith(".partial") and kwargs.get("dtype") == np.float32:
-            raise OSError(28, "No space left on device")
-        return real(path, data, *args, **kwargs)
+    real = batch._planes_writer
 
-    monkeypatch.setattr(tifffile, "imwrite", full_disk)
+    def full_disk(blocks, n_labels):
+        planes = real(blocks, n_labels)
+        yield next(planes)
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr(batch, "_planes_writer", full_disk)
     code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out"], capsys)
     assert code == 2 and "No space left" in err[-1] and "free space" in err[-1]
     assert [p.name for p in (tmp_path / "out").iterdir()] == []
+
+
+def test_several_series_are_unmixed_series_by_series(tmp_path, demo_matrix, capsys):
+    rng = np.random.default_rng(4)
+    names = ["blue450", "green525", "orange600"]
+    series = [rng.integers(90, 3000, size=(3, 32, 40)).astype(np.uint16) for _ in range(2)]
+    with tifffile.TiffWriter(tmp_path / "multi.ome.tif", ome=True) as writer:
+        for data in series:
+            writer.write(data, photometric="minisblack", metadata={"axes": "CYX", "Channel": {"Name": names}})
+    code, _, err = _run(["apply", "--matrix", demo_matrix, tmp_path / "multi.ome.tif", "-o", tmp_path / "out"],
+                        capsys)
+    assert code == 0, err
+    from unmix.images import read_images
+
+    outputs = read_images(tmp_path / "out" / "multi.unmixed.ome.tif")
+    matrix = load_matrix(demo_matrix)
+    assert len(outputs) == 2
+    for data, output in zip(series, outputs):
+        np.testing.assert_array_equal(output.data, Unmixer(matrix.matrix).unmix(data, matrix.background))
+    assert len(read_images(tmp_path / "out" / "multi.saturation.ome.tif")) == 2
 
 
 @pytest.mark.slow

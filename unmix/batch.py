@@ -227,52 +227,76 @@ def _planes_writer(blocks, n_labels: int):
             yield block[k]
 
 
-def _write_outputs(image: Image, matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path, series: int,
-                   settings: ApplySettings, background, levels, names: dict, provenance: dict, compute):
-    """Compute the blocks of one image in batches and stream them into the output files."""
+@dataclass(frozen=True)
+class _SeriesJob:
+    """One series of an input, ready to unmix."""
+
+    image: Image
+    index: int
+    background: np.ndarray
+    levels: np.ndarray
+    provenance: dict
+
+
+def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
+                   settings: ApplySettings, names: dict, compute) -> dict:
+    """Compute the blocks of every series in batches and stream them into the output files.
+
+    Each output file holds one series per input series, in the same order.
+    """
     import tifffile
 
-    keys = list(_block_keys(image))
-    ny, nx = image.data.shape[-2:]
-    leading_axes = "".join(a for a in image.axes if a not in "CYX")
-    out_axes = leading_axes + "CYX"
-    leading_shape = tuple(image.data.shape[image.axes.index(a)] for a in leading_axes)
     totals = {"nan": 0, "saturated": 0}
-    saturation_planes, residual_planes = [], []
+    masks, misfits = [], []
 
-    def blocks():
+    def blocks(job: _SeriesJob, keys: list):
         for start in range(0, len(keys), settings.batch_blocks):
             batch = keys[start:start + settings.batch_blocks]
-            results = compute([(str(path), series, settings.axes, settings.channel_names, list(matrix.channels), key,
-                                unmixer, background, levels, settings.residual) for key in batch])
+            results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
+                                key, unmixer, job.background, job.levels, settings.residual) for key in batch])
             for abundances, saturated, misfit, nan in results:
                 totals["nan"] += nan
                 totals["saturated"] += int(saturated.sum())
-                saturation_planes.append(saturated)
+                masks[-1].append(saturated)
                 if misfit is not None:
-                    residual_planes.append(misfit)
+                    misfits[-1].append(misfit)
                 yield abundances
 
-    metadata = {"axes": out_axes, "Channel": {"Name": list(matrix.labels)},
-                "Description": json.dumps(provenance, sort_keys=True)}
-    for axis, size in image.pixel_size.items():
-        metadata[f"PhysicalSize{axis}"] = float(size)
-    shape = leading_shape + (len(matrix.labels), ny, nx)
+    def layout(image: Image, n_channels: int):
+        leading = "".join(a for a in image.axes if a not in "CYX")
+        shape = tuple(image.data.shape[image.axes.index(a)] for a in leading)
+        return leading + "CYX", shape + (n_channels,) + tuple(image.data.shape[-2:])
+
+    def physical(image: Image) -> dict:
+        return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
+
+    total_bytes = sum(np.prod(layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4 for job in jobs)
     with atomic_output(names["unmixed"]) as tmp:
-        tifffile.imwrite(tmp, _planes_writer(blocks(), len(matrix.labels)), shape=shape, dtype=np.float32,
-                         ome=True, metadata=metadata, photometric="minisblack",
-                         bigtiff=np.prod(shape, dtype=np.float64) * 4 > 2**31)
-    mask_axes = leading_axes + "CYX"
-    mask = np.stack(saturation_planes).reshape(leading_shape + (1, ny, nx))
-    mask_meta = {"axes": mask_axes, "Channel": {"Name": ["saturated"]},
-                 "Description": json.dumps({"of": names["unmixed"].name, "levels": [float(v) for v in levels]})}
-    with atomic_output(names["saturation"]) as tmp:
-        tifffile.imwrite(tmp, mask, ome=True, metadata=mask_meta, photometric="minisblack", compression="zlib")
+        with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
+            for job in jobs:
+                axes, shape = layout(job.image, len(matrix.labels))
+                masks.append([])
+                misfits.append([])
+                writer.write(_planes_writer(blocks(job, list(_block_keys(job.image))), len(matrix.labels)),
+                             shape=shape, dtype=np.float32, photometric="minisblack",
+                             metadata={"axes": axes, "Channel": {"Name": list(matrix.labels)},
+                                       "Description": json.dumps(job.provenance, sort_keys=True),
+                                       **physical(job.image)})
+
+    def write_per_pixel(name: str, planes: list, channel: str, description: dict, compression=None):
+        with atomic_output(names[name]) as tmp:
+            with tifffile.TiffWriter(tmp, ome=True) as writer:
+                for job, series_planes in zip(jobs, planes):
+                    axes, shape = layout(job.image, 1)
+                    writer.write(np.stack(series_planes).reshape(shape), photometric="minisblack",
+                                 compression=compression,
+                                 metadata={"axes": axes, "Channel": {"Name": [channel]},
+                                           "Description": json.dumps(description), **physical(job.image)})
+
+    write_per_pixel("saturation", masks, "saturated",
+                    {"of": names["unmixed"].name, "levels": [float(v) for v in jobs[0].levels]}, compression="zlib")
     if settings.residual:
-        misfit = np.stack(residual_planes).reshape(leading_shape + (1, ny, nx))
-        with atomic_output(names["residual"]) as tmp:
-            tifffile.imwrite(tmp, misfit, ome=True, photometric="minisblack",
-                             metadata={"axes": mask_axes, "Channel": {"Name": ["residual_rms"]}})
+        write_per_pixel("residual", misfits, "residual_rms", {"of": names["unmixed"].name})
     return totals
 
 
@@ -403,19 +427,19 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
                 raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
                                  "pass --overwrite to replace it or choose another -o")
             # Same run, interrupted before its mask was written: done again below.
-        if len(images) > 1:
-            raise InputError(f"{path}: holds {len(images)} series; multi-series output is not supported yet, "
-                             "export each series to its own file")
-        image = _matched(matrix, images[0])
-        background = _background_for(matrix, image, settings.background)
-        levels = _levels(matrix, image, settings.saturation)
-        provenance = _provenance(matrix, matrix_sha, path, fingerprint, settings, background, 0)
+        jobs = []
+        for image in images:
+            image = _matched(matrix, image)
+            background = _background_for(matrix, image, settings.background)
+            jobs.append(_SeriesJob(image, image.series, background, _levels(matrix, image, settings.saturation),
+                                   _provenance(matrix, matrix_sha, path, fingerprint, settings, background,
+                                               image.series)))
         outdir.mkdir(parents=True, exist_ok=True)
         for name in names.values():
             remove_stale_temporaries(name)
-        totals = _write_outputs(image, matrix, unmixer, path, 0, settings, background, levels, names, provenance,
-                                compute)
-        pixels = int(np.prod([image.data.shape[image.axes.index(a)] for a in image.axes if a != "C"]))
+        totals = _write_outputs(jobs, matrix, unmixer, path, settings, names, compute)
+        pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
+                     for job in jobs)
         return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],
                           saturated_pixels=totals["saturated"], pixels=pixels)
     except InputError as exc:
