@@ -308,3 +308,29 @@ def test_interrupted_output_without_its_mask_is_redone(tmp_path, demo, demo_matr
     stale.write_bytes(b"half")
     assert _run(argv, capsys)[0] == 0
     assert (tmp_path / "sample.saturation.ome.tif").exists() and not stale.exists()
+
+
+def test_ome_zarr_input_gives_ome_zarr_output(tmp_path, demo_matrix, capsys):
+    # Reference reader: ome-zarr finds the written image; pixels equal the kernel's.
+    from ome_zarr.io import parse_url
+    from ome_zarr.reader import Reader
+
+    from unmix.images import Image, write_ome_zarr
+
+    rng = np.random.default_rng(6)
+    data = rng.integers(90, 3000, size=(3, 2, 24, 30)).astype(np.uint16)  # C Z Y X
+    source = write_ome_zarr(tmp_path / "z.ome.zarr", Image(data, "CZYX", ("blue450", "green525", "orange600")))
+    argv = ["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "out", "--quiet", "--residual"]
+    code, _, err = _run(argv, capsys)
+    assert code == 0, err
+    output = tmp_path / "out" / "z.unmixed.ome.zarr"
+    result = read_image(output)
+    matrix = load_matrix(demo_matrix)
+    assert result.axes == "CZYX" and result.channel_names == matrix.labels
+    np.testing.assert_array_equal(result.data, Unmixer(matrix.matrix).unmix(data, matrix.background))
+    nodes = list(Reader(parse_url(str(output)))())
+    np.testing.assert_array_equal(np.asarray(nodes[0].data[0]), result.data)
+    assert (tmp_path / "out" / "z.saturation.ome.zarr").is_dir()
+    assert (tmp_path / "out" / "z.residual.ome.zarr").is_dir()
+    assert _run(argv, capsys)[0] == 0  # rerun: kept
+    assert read_provenance(output)["matrix"]["sha256"] == matrix.sha256()

@@ -37,7 +37,7 @@ import numpy as np
 
 from .atomic import atomic_output, remove_stale_temporaries, write_text_atomic
 from .errors import InputError
-from .images import Image, check_axes, output_stem, read_images, read_provenance
+from .images import Image, check_axes, is_zarr_path, output_stem, read_images, read_provenance
 from .matrix import BleedThroughMatrix
 from .solve import Unmixer
 
@@ -191,9 +191,9 @@ def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unm
     return abundances, saturated, misfit, nan
 
 
-def _output_names(outdir: Path, stem: str) -> dict:
-    return {"unmixed": outdir / f"{stem}.unmixed.ome.tif", "saturation": outdir / f"{stem}.saturation.ome.tif",
-            "residual": outdir / f"{stem}.residual.ome.tif"}
+def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
+    suffix = ".ome.zarr" if zarr_output else ".ome.tif"
+    return {kind: outdir / f"{stem}.{kind}{suffix}" for kind in ("unmixed", "saturation", "residual")}
 
 
 def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerprint: str, settings: ApplySettings,
@@ -300,6 +300,64 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     return totals
 
 
+def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
+                        settings: ApplySettings, names: dict, compute) -> dict:
+    """OME-Zarr input gives OME-Zarr outputs: blocks computed in parallel batches, each stored in its chunk."""
+    import contextlib
+
+    import zarr
+    from ome_zarr.writer import write_multiscales_metadata
+
+    totals = {"nan": 0, "saturated": 0}
+    kinds = ["unmixed", "saturation"] + (["residual"] if settings.residual else [])
+    channels = {"unmixed": list(matrix.labels), "saturation": ["saturated"], "residual": ["residual_rms"]}
+    dtypes = {"unmixed": np.float32, "saturation": np.uint8, "residual": np.float32}
+    with contextlib.ExitStack() as stack:
+        roots = {kind: zarr.open_group(str(stack.enter_context(atomic_output(names[kind]))), mode="w")
+                 for kind in kinds}
+        for kind, root in roots.items():
+            if len(jobs) > 1:
+                root.attrs["bioformats2raw.layout"] = 3
+        for i, job in enumerate(jobs):
+            image = job.image
+            c_axis = image.channel_axis
+            arrays = {}
+            for kind, root in roots.items():
+                group = root if len(jobs) == 1 else root.create_group(str(i))
+                shape = list(image.data.shape)
+                shape[c_axis] = len(channels[kind])
+                chunks = [1] * len(shape)
+                chunks[c_axis], chunks[-2], chunks[-1] = shape[c_axis], shape[-2], shape[-1]
+                arrays[kind] = group.create_array("0", shape=tuple(shape), chunks=tuple(chunks), dtype=dtypes[kind])
+                axes = [{"name": a.lower(), "type": {"T": "time", "C": "channel"}.get(a, "space")} for a in image.axes]
+                scale = [float(image.pixel_size.get(a, 1.0)) for a in image.axes]
+                write_multiscales_metadata(group, datasets=[{"path": "0", "coordinateTransformations": [
+                    {"type": "scale", "scale": scale}]}], axes=axes)
+                _add_zarr_attrs(group, {"omero": {"channels": [{"label": n, "active": True} for n in channels[kind]]}})
+                group.attrs["unmix_provenance"] = job.provenance if kind == "unmixed" else {"of": names["unmixed"].name}
+            keys = list(_block_keys(image))
+            for start in range(0, len(keys), settings.batch_blocks):
+                batch = keys[start:start + settings.batch_blocks]
+                results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
+                                    key, unmixer, job.background, job.levels, settings.residual) for key in batch])
+                for key, (abundances, saturated, misfit, nan) in zip(batch, results):
+                    totals["nan"] += nan
+                    totals["saturated"] += int(saturated.sum())
+                    arrays["unmixed"][key] = abundances
+                    arrays["saturation"][key] = saturated[None]
+                    if misfit is not None:
+                        arrays["residual"][key] = misfit[None]
+    return totals
+
+
+def _add_zarr_attrs(group, extra: dict) -> None:
+    """Add keys beside the NGFF metadata (under "ome" for NGFF 0.5, top level for 0.4)."""
+    if "ome" in group.attrs:
+        group.attrs["ome"] = {**dict(group.attrs["ome"]), **extra}
+    else:
+        group.attrs.update(extra)
+
+
 def _local_compute(argument_lists):
     import dask
 
@@ -354,8 +412,8 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
     resolved_inputs = {Path(p).resolve() for p, _ in plan}
-    for _, stem in plan:
-        for name in _output_names(outdir, stem).values():
+    for source, stem in plan:
+        for name in _output_names(outdir, stem, is_zarr_path(source)).values():
             if name.resolve() in resolved_inputs:
                 raise InputError(f"{name}: the output would replace an input; choose another output folder")
     if settings.background not in ("matrix", "estimate") and not Path(settings.background).exists():
@@ -410,7 +468,7 @@ def _record(manifest_path: Path, result: FileResult, matrix_sha: str, settings: 
 
 def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path, settings: ApplySettings,
                compute) -> FileResult:
-    names = _output_names(outdir, stem)
+    names = _output_names(outdir, stem, is_zarr_path(path))
     try:
         images = read_images(path, axes=settings.axes, channel_names=settings.channel_names, lazy=True)
         fingerprint = input_fingerprint(path)
@@ -437,7 +495,8 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
         outdir.mkdir(parents=True, exist_ok=True)
         for name in names.values():
             remove_stale_temporaries(name)
-        totals = _write_outputs(jobs, matrix, unmixer, path, settings, names, compute)
+        write = _write_zarr_outputs if is_zarr_path(path) else _write_outputs
+        totals = write(jobs, matrix, unmixer, path, settings, names, compute)
         pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
                      for job in jobs)
         return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],

@@ -484,9 +484,14 @@ def write_ome_tiff(path, image: Image, *, provenance: dict | None = None, compre
 
 
 def read_provenance(path) -> dict | None:
-    """The provenance JSON stored by :func:`write_ome_tiff`, or None."""
+    """The provenance stored by :func:`write_ome_tiff` or :func:`write_ome_zarr`, or None."""
     import tifffile
 
+    if Path(path).is_dir():
+        import zarr
+
+        value = zarr.open_group(str(path), mode="r").attrs.get("unmix_provenance")
+        return dict(value) if isinstance(value, dict) else None
     with tifffile.TiffFile(path) as tif:
         xml = tif.ome_metadata
     if not xml:
