@@ -315,8 +315,8 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
     with contextlib.ExitStack() as stack:
         roots = {kind: zarr.open_group(str(stack.enter_context(atomic_output(names[kind]))), mode="w")
                  for kind in kinds}
-        for kind, root in roots.items():
-            if len(jobs) > 1:
+        if len(jobs) > 1:
+            for root in roots.values():
                 root.attrs["bioformats2raw.layout"] = 3
         for i, job in enumerate(jobs):
             image = job.image
