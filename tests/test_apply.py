@@ -334,3 +334,16 @@ def test_ome_zarr_input_gives_ome_zarr_output(tmp_path, demo_matrix, capsys):
     assert (tmp_path / "out" / "z.residual.ome.zarr").is_dir()
     assert _run(argv, capsys)[0] == 0  # rerun: kept
     assert read_provenance(output)["matrix"]["sha256"] == matrix.sha256()
+
+
+@pytest.mark.parametrize("choice", ["estimate", "dark"])
+def test_background_estimated_or_from_a_dark_frame(choice, tmp_path, demo, demo_matrix, capsys, scenario):
+    background = "estimate" if choice == "estimate" else str(demo["dark"])
+    argv = ["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path, "--quiet", "--background", background]
+    assert _run(argv, capsys)[0] == 0
+    levels = read_provenance(tmp_path / "sample.unmixed.ome.tif")["background"]["levels"]
+    offset = scenario.raw["camera"]["offset_adu"]  # known offset of the simulated camera
+    if choice == "dark":
+        np.testing.assert_allclose(levels, offset, atol=0.5)
+    else:  # the sample's own background: offset plus some autofluorescence
+        assert all(offset - 1 <= level <= offset + 25 for level in levels)
