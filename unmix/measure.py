@@ -214,27 +214,20 @@ def _merge_blocks(stats: np.ndarray, blocks_y: int, blocks_x: int, max_blocks: i
     return grid.reshape(-1, stats.shape[1])
 
 
-def _crop_for_registration(shape, usable: np.ndarray, size: int = 192):
-    """A window of at most `size` pixels in the plane with most usable pixels, centred on its
-    middle usable pixel (indices are in raster order, so that pixel lies on the median row)."""
-    n_planes, ny, nx = shape
-    if n_planes == 1:
-        plane, in_plane = 0, usable
-    else:
-        planes = usable // (ny * nx)
-        plane = int(np.argmax(np.bincount(planes, minlength=n_planes)))
-        in_plane = usable[planes == plane] % (ny * nx)
-    middle = int(in_plane[in_plane.size // 2]) if in_plane.size else (ny // 2) * nx + nx // 2
-    cy, cx = divmod(middle, nx)
+def _crop_for_registration(shape, usable_per_block: np.ndarray, block_size: int, size: int = 192):
+    """A window of at most `size` pixels centred on the block with most usable pixels."""
+    ny, nx = shape
+    by, bx = np.unravel_index(int(np.argmax(usable_per_block)), usable_per_block.shape)
+    cy, cx = by * block_size + block_size // 2, bx * block_size + block_size // 2
     y0 = min(max(cy - size // 2, 0), max(ny - size, 0))
     x0 = min(max(cx - size // 2, 0), max(nx - size, 0))
-    return plane, slice(y0, y0 + size), slice(x0, x0 + size)
+    return slice(y0, y0 + size), slice(x0, x0 + size)
 
 
 def _field_statistics(image: Image, primary: int, levels: np.ndarray, background: np.ndarray | None,
                       settings: MeasureSettings, allow_nonfinite: bool,
                       summaries: list | None = None) -> _FieldResult:
-    from .measure_kernels import block_statistics, select_pixels
+    from .measure_kernels import field_statistics, proxy_sample
 
     stack = _stack(image)
     n_channels, n_planes, ny, nx = stack.shape
@@ -251,39 +244,33 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
     noise = summaries[primary].noise
     threshold = (summaries[primary].background - background[primary]) + settings.min_snr * noise
 
-    # The kernels release the GIL: split rows (then usable pixels) among threads.
+    # The dim/bright split needs only an approximate median: a sample of rows will do.
+    sample = proxy_sample(stack, background, primary, float(threshold), max(1, ny // 128))
+    split = float(np.median(sample)) if sample.size else 0.0
+    n_stats = _N_SCALARS + len(_PER_CHANNEL) * n_channels
+    # The kernel releases the GIL: split rows among threads.
     bounds = np.linspace(0, ny, THREADS + 1).astype(int)
-    parts = map_in_threads(select_pixels, [
-        (stack, background, levels, primary, float(threshold), stack.dtype.kind == "f", int(a), int(b))
+    parts = map_in_threads(field_statistics, [
+        (stack, background, levels, primary, float(threshold), stack.dtype.kind == "f", int(a), int(b),
+         split, settings.block_size, n_stats, _N_SCALARS)
         for a, b in zip(bounds[:-1], bounds[1:]) if b > a])
-    usable = np.concatenate([p[0] for p in parts])
-    proxies = np.concatenate([p[1] for p in parts])
-    n_signal = sum(p[2] for p in parts)
-    saturated_signal = sum(p[3] for p in parts)
-    channel_sums = sum(p[4] for p in parts)
-    n_valid = sum(p[5] for p in parts)
-    n_nonfinite = sum(p[6] for p in parts)
-    if n_planes > 1:
-        # Row chunks hold every plane: restore raster order over (plane, row, column).
-        order = np.argsort(usable, kind="stable")
-        usable, proxies = usable[order], proxies[order]
+    stats = sum(p[0] for p in parts)
+    n_signal = sum(p[1] for p in parts)
+    saturated_signal = sum(p[2] for p in parts)
+    channel_sums = sum(p[3] for p in parts)
+    n_valid = sum(p[4] for p in parts)
+    n_nonfinite = sum(p[5] for p in parts)
     if n_nonfinite and not allow_nonfinite:
         raise InputError(
             f"{image.name}: {n_nonfinite} NaN/inf pixels; fix the control or pass --allow-nonfinite to exclude them"
         )
-    # The dim/bright split needs only an approximate median: a strided sample will do.
-    split = float(np.median(proxies[:: max(1, proxies.size // 65536)])) if proxies.size else 0.0
-    n_stats = _N_SCALARS + len(_PER_CHANNEL) * n_channels
-    cuts = np.linspace(0, usable.size, THREADS + 1).astype(int)
-    stats = sum(map_in_threads(block_statistics, [
-        (stack, background, primary, usable[a:b], proxies[a:b], split, settings.block_size, n_stats, _N_SCALARS)
-        for a, b in zip(cuts[:-1], cuts[1:])]))
-    stats = _merge_blocks(stats, -(-ny // settings.block_size), -(-nx // settings.block_size), settings.max_blocks)
-    stats = stats[stats[:, _N] > 0]
-
+    blocks_y, blocks_x = -(-ny // settings.block_size), -(-nx // settings.block_size)
+    n_usable = int(stats[:, _N].sum())
     shift = np.full((n_channels, 2), np.nan)
-    if usable.size:
-        plane, rows, cols = _crop_for_registration(stack.shape[1:], usable)
+    if n_usable:
+        rows, cols = _crop_for_registration((ny, nx), stats[:, _N].reshape(blocks_y, blocks_x),
+                                            settings.block_size)
+        plane = n_planes // 2
 
         def crop(c):
             window = stack[c, plane, rows, cols].astype(np.float32) - np.float32(background[c])
@@ -294,10 +281,12 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
         reference = crop(primary)
         for c in range(n_channels):
             shift[c] = 0.0 if c == primary else _registration_shift(reference, crop(c))
+    stats = _merge_blocks(stats, blocks_y, blocks_x, settings.max_blocks)
+    stats = stats[stats[:, _N] > 0]
 
     return _FieldResult(
         source=image.name, primary=primary, levels=levels, background=background, summaries=summaries,
-        block_stats=stats, n_signal=int(n_signal), n_usable=int(usable.size), n_nonfinite=int(n_nonfinite),
+        block_stats=stats, n_signal=int(n_signal), n_usable=n_usable, n_nonfinite=int(n_nonfinite),
         saturated_signal=np.asarray(saturated_signal), channel_sums=np.asarray(channel_sums),
         n_valid=int(n_valid), noise=float(noise), shift=shift,
     )

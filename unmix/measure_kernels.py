@@ -3,10 +3,10 @@
 Measuring is a few arithmetic operations per pixel, so in numpy it is
 dominated by temporaries: every mask, shifted sum and gathered column is a
 full-size array, and accumulating ~9 + 6C block sums costs one ``bincount``
-pass each. Two fused loops instead read each pixel once or twice, allocate
-only the compact list of usable pixels, and bring measuring four
-4 x 2048 x 2048 controls from about 60x to under 10x the time of reading them
-(``tests/benchmarks/bench_measure.py``).
+pass each. One fused loop instead reads each pixel once, flags it, computes
+its proxy and adds it to its block's sums, with no full-size temporary; it
+brought measuring four 4 x 2048 x 2048 controls from about 60x to about 11x
+the time of reading them (``tests/benchmarks/bench_measure.py``).
 
 The kernels are compiled on first use and cached on disk (``cache=True``).
 The statistics they compute are those described in :mod:`unmix.measure`.
@@ -19,45 +19,39 @@ from numba import njit
 
 
 @njit(cache=True, nogil=True)
-def select_pixels(stack, background, levels, primary, threshold, check_finite, row_start, row_stop):
-    """First pass over rows [row_start, row_stop) of every plane.
+def field_statistics(stack, background, levels, primary, threshold, check_finite, row_start, row_stop,
+                     split, block_size, n_stats, per_channel_start):
+    """One pass over rows [row_start, row_stop) of every plane: selection and block sums together.
 
-    Computes the neighbour-mean proxy, the signal and usable pixels and the
-    per-channel sums. Rows outside the range are only read as neighbours, so
-    the rows of a stack can be split among threads (the kernel releases the GIL).
+    Flags saturated and non-finite pixels, sums every channel over the valid
+    pixels, computes the neighbour-mean proxy of the primary channel, and adds
+    each usable pixel (proxy above `threshold`, valid) to the sums of its
+    spatial block. Rows outside the range are only read as neighbours, so the
+    rows of a stack can be split among threads (the kernel releases the GIL).
 
-    Parameters
-    ----------
-    stack : ndarray (C, P, Y, X)
-    background, levels : float64 (C,)
-    primary : int
-    threshold : float
-        Proxy threshold in background-subtracted units.
-    check_finite : bool
-        Whether the pixel type can hold NaN/inf.
-    row_start, row_stop : int
+    Block columns (see ``unmix.measure``): n, Sz, Sx, Szx, Sxx, n_lo, Sz_lo,
+    Sx_lo, Szx_lo, then per channel blocks of C columns: Sy, Szy, Sxy, Syy,
+    Sy_lo, Szy_lo; "lo" sums use the pixels whose proxy is below `split`.
 
     Returns
     -------
-    usable : int64 (n,) flat indices into (P, Y, X) of usable pixels, in raster order
-    proxy : float64 (n,) their neighbour-mean proxies
-    n_signal : int
+    stats : float64 (n_blocks, n_stats), blocks in raster order over (Y, X)
+    n_signal : int   pixels whose proxy is above the threshold
     saturated_signal : int64 (C,) signal pixels at or above each channel's level
     channel_sums : float64 (C,) background-subtracted sums over valid pixels
-    n_valid : int   pixels finite and unsaturated in every channel
+    n_valid : int    pixels finite and unsaturated in every channel
     n_nonfinite : int
     """
     n_channels, n_planes, ny, nx = stack.shape
     n_rows = row_stop - row_start
-    capacity = n_planes * n_rows * nx
-    usable = np.empty(capacity, np.int64)
-    proxies = np.empty(capacity, np.float64)
+    blocks_x = (nx + block_size - 1) // block_size
+    blocks_y = (ny + block_size - 1) // block_size
+    stats = np.zeros((blocks_y * blocks_x, n_stats), np.float64)
     saturated_signal = np.zeros(n_channels, np.int64)
     channel_sums = np.zeros(n_channels, np.float64)
     # Per pixel: 0 valid, 1 saturated in some channel, >= 2 non-finite in some channel.
     state = np.zeros((n_rows, nx), np.uint8)
     column = np.empty(nx, np.float64)
-    n_usable = 0
     n_signal = 0
     n_valid = 0
     n_nonfinite = 0
@@ -112,25 +106,66 @@ def select_pixels(stack, background, levels, primary, threshold, check_finite, r
             centre = stack[primary, plane, y]
             below = stack[primary, plane, y + 1]
             flags = state[y - row_start]
+            block_row = (y // block_size) * blocks_x
             # Column sums of the 3 rows (a vectorised loop), then a 3-wide window.
             for x in range(nx):
                 column[x] = float(above[x]) + centre[x] + below[x]
             for x in range(1, nx - 1):
-                proxy = (column[x - 1] + column[x] + column[x + 1] - centre[x]) / 8.0 - bp
-                if not proxy > threshold or flags[x] >= 2:
+                z = (column[x - 1] + column[x] + column[x + 1] - centre[x]) / 8.0 - bp
+                if not z > threshold or flags[x] >= 2:
                     continue
-                if check_finite and not np.isfinite(proxy):  # a NaN/inf neighbour
+                if check_finite and not np.isfinite(z):  # a NaN/inf neighbour
                     continue
                 n_signal += 1
+                if flags[x] != 0:
+                    for c in range(n_channels):
+                        if stack[c, plane, y, x] >= levels[c]:
+                            saturated_signal[c] += 1
+                    continue
+                block = block_row + x // block_size
+                p = centre[x] - bp
+                low = 1.0 if z < split else 0.0
+                stats[block, 0] += 1.0
+                stats[block, 1] += z
+                stats[block, 2] += p
+                stats[block, 3] += z * p
+                stats[block, 4] += p * p
+                stats[block, 5] += low
+                stats[block, 6] += low * z
+                stats[block, 7] += low * p
+                stats[block, 8] += low * z * p
                 for c in range(n_channels):
-                    if stack[c, plane, y, x] >= levels[c]:
-                        saturated_signal[c] += 1
-                if flags[x] == 0:
-                    usable[n_usable] = (plane * ny + y) * nx + x
-                    proxies[n_usable] = proxy
-                    n_usable += 1
-    return (usable[:n_usable].copy(), proxies[:n_usable].copy(), n_signal, saturated_signal, channel_sums,
-            n_valid, n_nonfinite)
+                    yc = stack[c, plane, y, x] - background[c]
+                    base = per_channel_start + c
+                    stats[block, base] += yc
+                    stats[block, base + n_channels] += z * yc
+                    stats[block, base + 2 * n_channels] += p * yc
+                    stats[block, base + 3 * n_channels] += yc * yc
+                    stats[block, base + 4 * n_channels] += low * yc
+                    stats[block, base + 5 * n_channels] += low * z * yc
+    return stats, n_signal, saturated_signal, channel_sums, n_valid, n_nonfinite
+
+
+@njit(cache=True, nogil=True)
+def proxy_sample(stack, background, primary, threshold, row_step):
+    """Neighbour-mean proxies above `threshold` on every `row_step`-th row: a sample
+    for the dim/bright split, cheap next to the full pass."""
+    n_channels, n_planes, ny, nx = stack.shape
+    out = np.empty(n_planes * (ny // row_step + 1) * nx, np.float64)
+    n = 0
+    bp = background[primary]
+    for plane in range(n_planes):
+        for y in range(1, ny - 1, row_step):
+            for x in range(1, nx - 1):
+                total = (float(stack[primary, plane, y - 1, x - 1]) + stack[primary, plane, y - 1, x]
+                         + stack[primary, plane, y - 1, x + 1] + stack[primary, plane, y, x - 1]
+                         + stack[primary, plane, y, x + 1] + stack[primary, plane, y + 1, x - 1]
+                         + stack[primary, plane, y + 1, x] + stack[primary, plane, y + 1, x + 1])
+                z = total / 8.0 - bp
+                if z > threshold and np.isfinite(z):
+                    out[n] = z
+                    n += 1
+    return out[:n].copy()
 
 
 @njit(cache=True, nogil=True)
@@ -140,52 +175,6 @@ def histogram(values, n_bins):
     for v in values:
         counts[v] += 1
     return counts
-
-
-@njit(cache=True, nogil=True)
-def block_statistics(stack, background, primary, usable, proxies, split, block_size, n_stats, per_channel_start):
-    """Second pass: per-block sums for the instrumental-variable slopes.
-
-    Columns (see ``unmix.measure``): n, Sz, Sx, Szx, Sxx, n_lo, Sz_lo, Sx_lo,
-    Szx_lo, then per channel blocks of C columns: Sy, Szy, Sxy, Syy, Sy_lo,
-    Szy_lo. "lo" sums use the pixels whose proxy is below `split`.
-    """
-    n_channels, n_planes, ny, nx = stack.shape
-    blocks_x = (nx + block_size - 1) // block_size
-    blocks_y = (ny + block_size - 1) // block_size
-    stats = np.zeros((blocks_y * blocks_x, n_stats), np.float64)
-    bp = background[primary]
-    for i in range(usable.size):
-        index = usable[i]
-        x_pos = index % nx
-        y_pos = (index // nx) % ny
-        plane = index // (nx * ny)
-        block = (y_pos // block_size) * blocks_x + (x_pos // block_size)
-        z = proxies[i]
-        x = stack[primary, plane, y_pos, x_pos] - bp
-        low = z < split
-        row = stats[block]
-        row[0] += 1.0
-        row[1] += z
-        row[2] += x
-        row[3] += z * x
-        row[4] += x * x
-        if low:
-            row[5] += 1.0
-            row[6] += z
-            row[7] += x
-            row[8] += z * x
-        for c in range(n_channels):
-            y = stack[c, plane, y_pos, x_pos] - background[c]
-            base = per_channel_start + c
-            row[base] += y
-            row[base + n_channels] += z * y
-            row[base + 2 * n_channels] += x * y
-            row[base + 3 * n_channels] += y * y
-            if low:
-                row[base + 4 * n_channels] += y
-                row[base + 5 * n_channels] += z * y
-    return stats
 
 
 @njit(cache=True, nogil=True)
