@@ -394,6 +394,8 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
                  scheduler: str | None = None, matrix_sha: str | None = None, progress=None) -> list[FileResult]:
     """Unmix every input with `matrix`, writing into `outdir`; one FileResult per input.
 
+    `progress`, if given, is called with the number of blocks finished after each batch of blocks.
+
     A bad input file is reported in its FileResult and the batch goes on;
     problems that concern the whole batch (the matrix, the output folder,
     name collisions) raise InputError before anything is written.
@@ -435,12 +437,18 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     else:
         client, compute = None, _local_compute
 
+    if progress is not None:
+        compute_blocks = compute
+
+        def compute(argument_lists):
+            results = compute_blocks(argument_lists)
+            progress(len(argument_lists))
+            return results
+
     manifest_path = outdir / MANIFEST
     results = []
     try:
-        for index, (path, stem) in enumerate(plan):
-            if progress:
-                progress(index, len(plan), path)
+        for path, stem in plan:
             results.append(_apply_one(matrix, unmixer, matrix_sha, path, stem, outdir, settings, compute))
             if results[-1].status == "written":
                 _record(manifest_path, results[-1], matrix_sha, settings)

@@ -184,11 +184,12 @@ def _apply(args) -> int:
                       f"{matrix.condition_number():.0f}); unmixed abundances will be very noisy", InputWarning,
                       stacklevel=2)
 
-    def progress(index, total, path):
-        if sys.stderr.isatty() and not args.quiet:
-            print(f"[{index + 1}/{total}] {path}", file=sys.stderr)
+    from tqdm import tqdm
 
-    results = apply_matrix(matrix, inputs, outdir, settings=settings, scheduler=args.scheduler, progress=progress)
+    # A progress bar only for a person watching: never in logs or pipes.
+    with tqdm(unit="block", desc="unmixing", disable=args.quiet or not sys.stderr.isatty(), leave=False) as bar:
+        results = apply_matrix(matrix, inputs, outdir, settings=settings, scheduler=args.scheduler,
+                               progress=bar.update)
     failed = [r for r in results if r.status == "failed"]
     if not args.quiet:
         rows = [["input", "status", "output", "NaN px", "saturated px"]]
