@@ -155,7 +155,9 @@ def _apply(args) -> int:
     matrix = load_matrix(args.matrix)
     inputs = []
     for pattern in args.inputs:
-        matches = sorted(glob.glob(pattern)) if any(ch in pattern for ch in "*?[") else [pattern]
+        # A file that exists is taken as named, even if its name holds glob characters.
+        literal = Path(pattern).exists() or not any(ch in pattern for ch in "*?[")
+        matches = [pattern] if literal else sorted(glob.glob(pattern))
         if not matches:
             raise InputError(f"{pattern}: matches no file; check the pattern")
         inputs += matches

@@ -290,17 +290,18 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool) -> list[Image]
             tif = tifffile.TiffFile(path)
         except Exception as exc:  # tifffile raises many types on damaged files
             raise InputError(f"{path}: not a readable TIFF file ({_short(exc)}); check the file") from None
+        def refuse_if_damaged():
+            # tifffile reports damage (bad offsets, unreadable tags) as errors
+            # and carries on with what it could parse: refuse instead of
+            # returning a partial image.
+            if capture.errors:
+                raise InputError(f"{path}: damaged TIFF ({_short(Exception(capture.errors[0]))}); "
+                                 "check or re-export the file")
+
         try:
-            if capture.errors:
-                # tifffile reports damage (bad offsets, unreadable tags) as
-                # errors and carries on with what it could parse: refuse instead
-                # of returning a partial image.
-                raise InputError(f"{path}: damaged TIFF ({_short(Exception(capture.errors[0]))}); "
-                                 "check or re-export the file")
+            refuse_if_damaged()  # damage found while opening
             images = _tiff_series(tif, path, axes_override, lazy)
-            if capture.errors:
-                raise InputError(f"{path}: damaged TIFF ({_short(Exception(capture.errors[0]))}); "
-                                 "check or re-export the file")
+            refuse_if_damaged()  # damage found while reading the series
         except InputError:
             tif.close()
             raise
