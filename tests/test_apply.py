@@ -304,10 +304,13 @@ def test_interrupted_output_without_its_mask_is_redone(tmp_path, demo, demo_matr
     argv = ["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path, "--quiet"]
     assert _run(argv, capsys)[0] == 0
     (tmp_path / "sample.saturation.ome.tif").unlink()
-    stale = tmp_path / ".sample.unmixed.ome.tif.999999999-deadbeef.partial"
-    stale.write_bytes(b"half")
+    stale = [tmp_path / ".sample.unmixed.ome.tif.999999999-deadbeef.partial",
+             tmp_path / ".unmix-manifest.json.999999999-deadbeef.partial"]
+    for path in stale:
+        path.write_bytes(b"half")
     assert _run(argv, capsys)[0] == 0
-    assert (tmp_path / "sample.saturation.ome.tif").exists() and not stale.exists()
+    assert (tmp_path / "sample.saturation.ome.tif").exists()
+    assert not any(path.exists() for path in stale)
 
 
 def test_ome_zarr_input_gives_ome_zarr_output(tmp_path, demo_matrix, capsys):

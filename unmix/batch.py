@@ -446,6 +446,12 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
             return results
 
     manifest_path = outdir / MANIFEST
+    if outdir.is_dir():
+        # Temporaries left by a killed run (outputs or manifest): never under a final name, removed here.
+        for source, stem in plan:
+            for name in _output_names(outdir, stem, is_zarr_path(source)).values():
+                remove_stale_temporaries(name)
+        remove_stale_temporaries(manifest_path)
     results = []
     try:
         for path, stem in plan:
@@ -501,8 +507,6 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
                                    _provenance(matrix, matrix_sha, path, fingerprint, settings, background,
                                                image.series)))
         outdir.mkdir(parents=True, exist_ok=True)
-        for name in names.values():
-            remove_stale_temporaries(name)
         write = _write_zarr_outputs if is_zarr_path(path) else _write_outputs
         totals = write(jobs, matrix, unmixer, path, settings, names, compute)
         pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
