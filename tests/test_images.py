@@ -39,8 +39,8 @@ def test_axes_from_ome_metadata_are_put_in_canonical_order(tmp_path, stack):
     np.testing.assert_array_equal(image.data, np.moveaxis(stack, 1, 0))
 
 
-def test_imagej_hyperstack_axes(tmp_path):
-    # Reference: tifffile's ImageJ writer stores TZCYX hyperstacks.
+def test_hyperstack_tiff_axes(tmp_path):
+    # Reference: tifffile writes TZCYX hyperstack metadata (its "imagej" flavour of TIFF).
     data = np.arange(2 * 3 * 2 * 8 * 9, dtype=np.uint16).reshape(2, 3, 2, 8, 9)
     tifffile.imwrite(tmp_path / "ij.tif", data, imagej=True, metadata={"axes": "TZCYX"})
     image = read_image(tmp_path / "ij.tif")

@@ -6,7 +6,7 @@ axes present, ``C``, ``Y`` and ``X`` always), the channel names, the physical
 pixel sizes and where it came from. Readers put the axes into that order, so
 no other module needs to know how a file stored them.
 
-Axis rules (the command line's contract): axes come from OME or ImageJ
+Axis rules (the command line's contract): axes come from OME or hyperstack
 metadata when the file has them; a file without axis metadata is read as
 ``CYX`` when it is 3-D and ``YX`` when it is 2-D; anything else needs an
 explicit `axes` argument (``--axes`` on the command line). Channel names come
