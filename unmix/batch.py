@@ -35,7 +35,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .atomic import atomic_output, remove_stale_temporaries, write_text_atomic
+from .atomic import atomic_output, remove_stale_temporaries, temporary_sibling, write_text_atomic
 from .errors import InputError
 from .images import Image, check_axes, is_zarr_path, output_stem, read_images, read_provenance
 from .matrix import BleedThroughMatrix
@@ -243,24 +243,16 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     """Compute the blocks of every series in batches and stream them into the output files.
 
     Each output file holds one series per input series, in the same order.
+    The abundances are streamed into their file as they are computed; the
+    per-pixel maps (saturation mask, residual) of each block go to
+    disk-backed arrays beside the outputs and are written out at the end, so
+    memory stays bounded by a few blocks whatever the size of the stack.
     """
+    import contextlib
+
     import tifffile
 
     totals = {"nan": 0, "saturated": 0}
-    masks, misfits = [], []
-
-    def blocks(job: _SeriesJob, keys: list):
-        for start in range(0, len(keys), settings.batch_blocks):
-            batch = keys[start:start + settings.batch_blocks]
-            results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
-                                key, unmixer, job.background, job.levels, settings.residual) for key in batch])
-            for abundances, saturated, misfit, nan in results:
-                totals["nan"] += nan
-                totals["saturated"] += int(saturated.sum())
-                masks[-1].append(saturated)
-                if misfit is not None:
-                    misfits[-1].append(misfit)
-                yield abundances
 
     def layout(image: Image, n_channels: int):
         leading = "".join(a for a in image.axes if a not in "CYX")
@@ -270,33 +262,61 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     def physical(image: Image) -> dict:
         return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
 
-    total_bytes = sum(np.prod(layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4 for job in jobs)
-    with atomic_output(names["unmixed"]) as tmp:
-        with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
-            for job in jobs:
-                axes, shape = layout(job.image, len(matrix.labels))
-                masks.append([])
-                misfits.append([])
-                writer.write(_planes_writer(blocks(job, list(_block_keys(job.image))), len(matrix.labels)),
-                             shape=shape, dtype=np.float32, photometric="minisblack",
-                             metadata={"axes": axes, "Channel": {"Name": list(matrix.labels)},
-                                       "Description": json.dumps(job.provenance, sort_keys=True),
-                                       **physical(job.image)})
+    def blocks(job: _SeriesJob, keys: list, maps: dict):
+        done = 0
+        for start in range(0, len(keys), settings.batch_blocks):
+            batch = keys[start:start + settings.batch_blocks]
+            results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
+                                key, unmixer, job.background, job.levels, settings.residual) for key in batch])
+            for abundances, saturated, misfit, nan in results:
+                totals["nan"] += nan
+                totals["saturated"] += int(saturated.sum())
+                maps["saturation"][done, 0] = saturated
+                if misfit is not None:
+                    maps["residual"][done, 0] = misfit
+                done += 1
+                yield abundances
 
-    def write_per_pixel(name: str, planes: list, channel: str, description: dict, compression=None):
-        with atomic_output(names[name]) as tmp:
-            with tifffile.TiffWriter(tmp, ome=True) as writer:
-                for job, series_planes in zip(jobs, planes):
-                    axes, shape = layout(job.image, 1)
-                    writer.write(np.stack(series_planes).reshape(shape), photometric="minisblack",
-                                 compression=compression,
-                                 metadata={"axes": axes, "Channel": {"Name": [channel]},
-                                           "Description": json.dumps(description), **physical(job.image)})
-
-    write_per_pixel("saturation", masks, "saturated",
-                    {"of": names["unmixed"].name, "levels": [float(v) for v in jobs[0].levels]}, compression="zlib")
-    if settings.residual:
-        write_per_pixel("residual", misfits, "residual_rms", {"of": names["unmixed"].name})
+    kinds = {"saturation": (np.uint8, "saturated"), "residual": (np.float32, "residual_rms")}
+    if not settings.residual:
+        del kinds["residual"]
+    with contextlib.ExitStack() as scratch:
+        maps_per_series = []
+        for job in jobs:
+            _, shape = layout(job.image, 1)
+            n_blocks = int(np.prod(shape[:-3], dtype=np.int64))
+            maps = {}
+            for kind, (dtype, _) in kinds.items():
+                # A hidden ".partial" name: removed on exit, and by the stale
+                # clean-up if this process is killed.
+                backing = temporary_sibling(names[kind])
+                scratch.callback(backing.unlink, missing_ok=True)
+                maps[kind] = np.lib.format.open_memmap(backing, mode="w+", dtype=dtype,
+                                                       shape=(n_blocks, 1) + shape[-2:])
+            maps_per_series.append(maps)
+        total_bytes = sum(np.prod(layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4 for job in jobs)
+        with atomic_output(names["unmixed"]) as tmp:
+            with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
+                for job, maps in zip(jobs, maps_per_series):
+                    axes, shape = layout(job.image, len(matrix.labels))
+                    writer.write(_planes_writer(blocks(job, list(_block_keys(job.image)), maps),
+                                                len(matrix.labels)),
+                                 shape=shape, dtype=np.float32, photometric="minisblack",
+                                 metadata={"axes": axes, "Channel": {"Name": list(matrix.labels)},
+                                           "Description": json.dumps(job.provenance, sort_keys=True),
+                                           **physical(job.image)})
+        descriptions = {"saturation": {"of": names["unmixed"].name, "levels": [float(v) for v in jobs[0].levels]},
+                        "residual": {"of": names["unmixed"].name}}
+        for kind, (_, channel) in kinds.items():
+            with atomic_output(names[kind]) as tmp:
+                with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
+                    for job, maps in zip(jobs, maps_per_series):
+                        axes, shape = layout(job.image, 1)
+                        writer.write(maps[kind].reshape(shape), photometric="minisblack",
+                                     compression="zlib" if kind == "saturation" else None,
+                                     metadata={"axes": axes, "Channel": {"Name": [channel]},
+                                               "Description": json.dumps(descriptions[kind]),
+                                               **physical(job.image)})
     return totals
 
 
