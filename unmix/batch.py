@@ -238,15 +238,47 @@ class _SeriesJob:
     provenance: dict
 
 
+class _PlaneSpool:
+    """Planes appended to a scratch file and read back in order, one at a time.
+
+    Plain file writes and reads keep memory bounded (a memory map would count
+    every touched page as resident).
+    """
+
+    def __init__(self, path: Path, dtype):
+        self.path, self.dtype = Path(path), np.dtype(dtype)
+        self.file = open(self.path, "w+b")
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc_info):
+        self.file.close()
+        self.path.unlink(missing_ok=True)
+
+    def append(self, plane: np.ndarray) -> None:
+        self.file.write(np.ascontiguousarray(plane, dtype=self.dtype).tobytes())
+
+    def planes(self, plane_shape):
+        self.file.flush()
+        self.file.seek(0)
+        count = int(np.prod(plane_shape))
+        while True:
+            plane = np.fromfile(self.file, dtype=self.dtype, count=count)
+            if plane.size < count:
+                return
+            yield plane.reshape(plane_shape)
+
+
 def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
                    settings: ApplySettings, names: dict, compute) -> dict:
     """Compute the blocks of every series in batches and stream them into the output files.
 
     Each output file holds one series per input series, in the same order.
     The abundances are streamed into their file as they are computed; the
-    per-pixel maps (saturation mask, residual) of each block go to
-    disk-backed arrays beside the outputs and are written out at the end, so
-    memory stays bounded by a few blocks whatever the size of the stack.
+    per-pixel maps (saturation mask, residual) of each block are spooled to
+    scratch files beside the outputs and written out at the end, so memory
+    stays bounded by a few blocks whatever the size of the stack.
     """
     import contextlib
 
@@ -263,7 +295,6 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
         return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
 
     def blocks(job: _SeriesJob, keys: list, maps: dict):
-        done = 0
         for start in range(0, len(keys), settings.batch_blocks):
             batch = keys[start:start + settings.batch_blocks]
             results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
@@ -271,10 +302,9 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
             for abundances, saturated, misfit, nan in results:
                 totals["nan"] += nan
                 totals["saturated"] += int(saturated.sum())
-                maps["saturation"][done, 0] = saturated
+                maps["saturation"].append(saturated)
                 if misfit is not None:
-                    maps["residual"][done, 0] = misfit
-                done += 1
+                    maps["residual"].append(misfit)
                 yield abundances
 
     kinds = {"saturation": (np.uint8, "saturated"), "residual": (np.float32, "residual_rms")}
@@ -283,16 +313,11 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     with contextlib.ExitStack() as scratch:
         maps_per_series = []
         for job in jobs:
-            _, shape = layout(job.image, 1)
-            n_blocks = int(np.prod(shape[:-3], dtype=np.int64))
             maps = {}
             for kind, (dtype, _) in kinds.items():
                 # A hidden ".partial" name: removed on exit, and by the stale
                 # clean-up if this process is killed.
-                backing = temporary_sibling(names[kind])
-                scratch.callback(backing.unlink, missing_ok=True)
-                maps[kind] = np.lib.format.open_memmap(backing, mode="w+", dtype=dtype,
-                                                       shape=(n_blocks, 1) + shape[-2:])
+                maps[kind] = scratch.enter_context(_PlaneSpool(temporary_sibling(names[kind]), dtype))
             maps_per_series.append(maps)
         total_bytes = sum(np.prod(layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4 for job in jobs)
         with atomic_output(names["unmixed"]) as tmp:
@@ -312,7 +337,8 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
                 with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
                     for job, maps in zip(jobs, maps_per_series):
                         axes, shape = layout(job.image, 1)
-                        writer.write(maps[kind].reshape(shape), photometric="minisblack",
+                        writer.write(maps[kind].planes(shape[-2:]), shape=shape, dtype=kinds[kind][0],
+                                     photometric="minisblack",
                                      compression="zlib" if kind == "saturation" else None,
                                      metadata={"axes": axes, "Channel": {"Name": [channel]},
                                                "Description": json.dumps(descriptions[kind]),
