@@ -312,7 +312,7 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
         del kinds["residual"]
     with contextlib.ExitStack() as scratch:
         maps_per_series = []
-        for job in jobs:
+        for _ in jobs:
             maps = {}
             for kind, (dtype, _) in kinds.items():
                 # A hidden ".partial" name: removed on exit, and by the stale
