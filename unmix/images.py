@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import json
 import logging
-import os
 import xml.etree.ElementTree as ElementTree
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -545,7 +544,3 @@ def output_stem(path) -> str:
             return name[: -len(suffix)]
     return name
 
-
-def file_identity(path) -> str:
-    """Resolved path, for detecting the same file given twice."""
-    return os.path.realpath(path)
