@@ -109,22 +109,17 @@ def _sample_planes(image: Image, channel: int, most: int = 8) -> np.ndarray:
 def _levels(matrix: BleedThroughMatrix, image: Image, saturation) -> np.ndarray:
     """Saturation level per channel: given, else the lower of the matrix's and the contract's
     rule on a sample of this input (the sample may saturate where the controls did not)."""
-    from .levels import saturation_level, summarise_channel
+    from .levels import per_channel_levels, saturation_level, summarise_channel
 
     n = len(matrix.channels)
     if saturation is not None:
-        levels = np.atleast_1d(np.asarray(saturation, dtype=float))
-        if levels.size == 1:
-            levels = np.full(n, levels[0])
-        if levels.size != n:
-            raise InputError(f"--saturation: give one level or {n} (one per matrix channel)")
-        return levels
+        return per_channel_levels(saturation, n, "--saturation")
     detected = np.array([saturation_level([summarise_channel(_sample_planes(image, c))]) for c in range(n)])
     return detected if matrix.saturation is None else np.minimum(detected, matrix.saturation)
 
 
 def _background_for(matrix: BleedThroughMatrix, image: Image, choice: str) -> np.ndarray:
-    from .levels import summarise_channel
+    from .levels import reference_levels, summarise_channel
 
     if choice == "matrix":
         if matrix.background is None:
@@ -140,8 +135,7 @@ def _background_for(matrix: BleedThroughMatrix, image: Image, choice: str) -> np
     if missing:
         raise InputError(f"{choice}: background image lacks channels {missing}; give one imaged in every channel")
     reference = reference.select_channels(matrix.channels)
-    stack = np.moveaxis(np.asarray(reference.data), reference.channel_axis, 0)
-    return np.array([summarise_channel(stack[c]).median for c in range(stack.shape[0])])
+    return reference_levels(np.moveaxis(np.asarray(reference.data), reference.channel_axis, 0), choice)
 
 
 def _matched(matrix: BleedThroughMatrix, image: Image) -> Image:
@@ -238,6 +232,24 @@ class _SeriesJob:
     provenance: dict
 
 
+def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, unmixer: Unmixer,
+                     settings: ApplySettings, compute, totals: dict):
+    """Yield (key, abundances, saturation mask, misfit or None) per block of a series, in order.
+
+    Blocks are computed `settings.batch_blocks` at a time; NaN and saturated
+    pixel counts are added to `totals`.
+    """
+    keys = list(_block_keys(job.image))
+    for start in range(0, len(keys), settings.batch_blocks):
+        batch = keys[start:start + settings.batch_blocks]
+        results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
+                            key, unmixer, job.background, job.levels, settings.residual) for key in batch])
+        for key, (abundances, saturated, misfit, nan) in zip(batch, results):
+            totals["nan"] += nan
+            totals["saturated"] += int(saturated.sum())
+            yield key, abundances, saturated, misfit
+
+
 class _PlaneSpool:
     """Planes appended to a scratch file and read back in order, one at a time.
 
@@ -294,18 +306,13 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     def physical(image: Image) -> dict:
         return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
 
-    def blocks(job: _SeriesJob, keys: list, maps: dict):
-        for start in range(0, len(keys), settings.batch_blocks):
-            batch = keys[start:start + settings.batch_blocks]
-            results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
-                                key, unmixer, job.background, job.levels, settings.residual) for key in batch])
-            for abundances, saturated, misfit, nan in results:
-                totals["nan"] += nan
-                totals["saturated"] += int(saturated.sum())
-                maps["saturation"].append(saturated)
-                if misfit is not None:
-                    maps["residual"].append(misfit)
-                yield abundances
+    def blocks(job: _SeriesJob, maps: dict):
+        for _, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings, compute,
+                                                                 totals):
+            maps["saturation"].append(saturated)
+            if misfit is not None:
+                maps["residual"].append(misfit)
+            yield abundances
 
     kinds = {"saturation": (np.uint8, "saturated"), "residual": (np.float32, "residual_rms")}
     if not settings.residual:
@@ -324,8 +331,7 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
             with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
                 for job, maps in zip(jobs, maps_per_series):
                     axes, shape = layout(job.image, len(matrix.labels))
-                    writer.write(_planes_writer(blocks(job, list(_block_keys(job.image)), maps),
-                                                len(matrix.labels)),
+                    writer.write(_planes_writer(blocks(job, maps), len(matrix.labels)),
                                  shape=shape, dtype=np.float32, photometric="minisblack",
                                  metadata={"axes": axes, "Channel": {"Name": list(matrix.labels)},
                                            "Description": json.dumps(job.provenance, sort_keys=True),
@@ -381,18 +387,12 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
                     {"type": "scale", "scale": scale}]}], axes=axes)
                 _add_zarr_attrs(group, {"omero": {"channels": [{"label": n, "active": True} for n in channels[kind]]}})
                 group.attrs["unmix_provenance"] = job.provenance if kind == "unmixed" else {"of": names["unmixed"].name}
-            keys = list(_block_keys(image))
-            for start in range(0, len(keys), settings.batch_blocks):
-                batch = keys[start:start + settings.batch_blocks]
-                results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
-                                    key, unmixer, job.background, job.levels, settings.residual) for key in batch])
-                for key, (abundances, saturated, misfit, nan) in zip(batch, results):
-                    totals["nan"] += nan
-                    totals["saturated"] += int(saturated.sum())
-                    arrays["unmixed"][key] = abundances
-                    arrays["saturation"][key] = saturated[None]
-                    if misfit is not None:
-                        arrays["residual"][key] = misfit[None]
+            for key, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings,
+                                                                       compute, totals):
+                arrays["unmixed"][key] = abundances
+                arrays["saturation"][key] = saturated[None]
+                if misfit is not None:
+                    arrays["residual"][key] = misfit[None]
     return totals
 
 

@@ -14,6 +14,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .errors import InputError
+
 # Saturation pile-ups are looked for at the full scale of 8- to 16-bit
 # converters: 2^n - 1 for n = 8..16 (the command line's contract).
 SATURATION_CANDIDATES = tuple(2**n - 1 for n in range(16, 7, -1))
@@ -153,3 +155,23 @@ def saturation_level(summaries) -> float:
         if candidate == maximum and at_level >= SATURATION_MIN_FRACTION * total:
             return float(candidate)
     return min(s.max_of_type for s in summaries)
+
+
+def per_channel_levels(saturation, n_channels: int, what: str) -> np.ndarray | None:
+    """Saturation levels given as one number or one per channel, as an array of `n_channels`."""
+    if saturation is None:
+        return None
+    levels = np.atleast_1d(np.asarray(saturation, dtype=float))
+    if levels.size == 1:
+        levels = np.full(n_channels, levels[0])
+    if levels.size != n_channels or not np.all(levels > 0):
+        raise InputError(f"{what}: give one positive saturation level, or one per channel ({n_channels})")
+    return levels
+
+
+def reference_levels(stack: np.ndarray, where: str) -> np.ndarray:
+    """Per-channel median of an unstained or dark image (channels first): the level to subtract."""
+    level = np.array([summarise_channel(stack[c]).median for c in range(stack.shape[0])])
+    if not np.all(np.isfinite(level)):
+        raise InputError(f"{where}: a channel has no finite pixels; give a valid background image")
+    return level

@@ -58,7 +58,7 @@ import numpy as np
 
 from .errors import InputError, InputWarning
 from .images import Image, read_images
-from .levels import ChannelSummary, saturation_level, summarise_channel
+from .levels import ChannelSummary, per_channel_levels, reference_levels, saturation_level, summarise_channel
 from .matrix import BleedThroughMatrix
 from .threads import THREADS, map_in_threads
 
@@ -159,16 +159,6 @@ def _stack(image: Image) -> np.ndarray:
     data = np.asarray(image.data)
     data = np.moveaxis(data, image.channel_axis, 0)
     return data.reshape(data.shape[0], -1, data.shape[-2], data.shape[-1])
-
-
-def _reference_level(image: Image) -> np.ndarray:
-    """Per-channel median of an unstained or dark image: the level to subtract."""
-    stack = _stack(image)
-    summaries = [summarise_channel(stack[c]) for c in range(stack.shape[0])]
-    level = np.array([s.median for s in summaries])
-    if not np.all(np.isfinite(level)):
-        raise InputError(f"{image.name}: a channel has no finite pixels; give a valid background image")
-    return level
 
 
 def _high_pass(plane: np.ndarray, size: int = 17) -> np.ndarray:
@@ -379,17 +369,6 @@ def _grid(values) -> list:
     return [[_finite_or_none(v) for v in row] for row in np.asarray(values, dtype=float)]
 
 
-def _levels_for(n_channels: int, saturation, what: str) -> np.ndarray | None:
-    if saturation is None:
-        return None
-    levels = np.atleast_1d(np.asarray(saturation, dtype=float))
-    if levels.size == 1:
-        levels = np.full(n_channels, levels[0])
-    if levels.size != n_channels or not np.all(levels > 0):
-        raise InputError(f"{what}: give one positive saturation level, or one per channel ({n_channels})")
-    return levels
-
-
 def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=None, saturation=None,
                    primary: Mapping[str, str] | None = None, allow_nonfinite: bool = False,
                    settings: MeasureSettings | None = None, axes: str | None = None,
@@ -457,8 +436,8 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
     elif dark is not None:
         background_source = "dark"
         reference = _matched(_as_field_images(dark, read_options)[0], channels, "the dark frame")
-    fixed_background = _reference_level(reference) if reference is not None else None
-    fixed_levels = _levels_for(n_channels, saturation, "--saturation")
+    fixed_background = reference_levels(_stack(reference), reference.name) if reference is not None else None
+    fixed_levels = per_channel_levels(saturation, n_channels, "--saturation")
 
     def field_images(label):
         for i, source in enumerate(sources[label]):
@@ -661,7 +640,7 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
     from concurrent.futures import ThreadPoolExecutor
 
     # Checksums are computed in a background thread while measuring (hashlib
-    # releases the GIL), so they cost no extra wall time on two cores.
+    # releases the GIL), so that the second core can take that work.
     with ThreadPoolExecutor(max_workers=1) as pool:
         described = [pool.submit(prov.describe_input, path, "control" if role in controls else role,
                                  **({"label": role} if role in controls else {})) for role, path in all_paths]
