@@ -15,18 +15,26 @@ matrices. Per pixel the solver tries
 
 1. the full set (the unconstrained solution; most pixels stop here),
 2. the positive part of that solution's support (most of the rest stop here),
-3. every support by decreasing size, stopping at the first that satisfies
-   the KKT conditions.
+3. Lawson-Hanson active-set iterations on the normal equations (Bro & de
+   Jong's FNNLS), each solve a lookup of a precomputed support inverse,
+4. should all of these fail their KKT test (rounding on an ill-conditioned
+   M), every support by decreasing size.
 
 Among supports whose solution is non-negative, the optimum has the lowest
-objective ``-z_S . a_S / 2``; the solver keeps the best such candidate, so
-even where rounding makes every KKT test fail (ill-conditioned M) the answer
-is the exact enumeration optimum, never an iterate. No residual is formed.
+objective ``-z_S . a_S / 2``; the enumeration keeps the best such candidate,
+so even there the answer is the exact enumeration optimum, never an iterate.
+No residual is formed.
 
 The compiled kernel (numba, releasing the GIL so that threads run it in
 parallel) forms ``z`` per pixel from the stored pixel values, in float64,
-with no temporary arrays, then does K x K work per pixel. Measured on this machine for C=4, K=3 and 16 Mpx of
-float32 with realistic noise: see ``tests/benchmarks/bench_solve.py``.
+with no temporary arrays, then does K x K work per pixel. Why this form
+(``tests/benchmarks/bench_solve.py``, C=4, K=3, 16 Mpx of float32 with
+realistic noise, 61 % of pixels constrained): about 25 ns per pixel where the
+unconstrained solution is already non-negative and 58 ns per pixel overall;
+a per-pixel ``scipy.optimize.nnls`` loop is 200-400 times slower, a numpy
+scheme grouping pixels by support was about 4 times slower, and a tiled
+branch-free numba variant 2 times slower. It is still 12-16 times the plain
+``pinv(M) @ Y`` product, which remains the target to close.
 
 References
 ----------
