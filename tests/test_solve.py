@@ -133,10 +133,28 @@ def test_round_trip_without_noise():
 
 def test_nan_pixels_give_nan_everywhere():
     matrix = np.array([[1.0, 0.2], [0.3, 1.0]])
-    pixels = np.ones((2, 3), np.float32)
+    pixels = np.ones((2, 4), np.float32)
     pixels[1, 1] = np.nan
-    out = Unmixer(matrix).unmix(pixels)
-    assert np.isnan(out[:, 1]).all() and np.isfinite(out[:, [0, 2]]).all()
+    pixels[0, 3] = np.inf
+    for method in ("nnls", "ls"):
+        out = Unmixer(matrix, method=method).unmix(pixels)
+        assert np.isnan(out[:, [1, 3]]).all() and np.isfinite(out[:, [0, 2]]).all()
+
+
+@pytest.mark.parametrize("n_labels", [2, 3, 4, 5])
+def test_many_tiles_and_threads_match_scipy(n_labels):
+    # Reference: scipy.optimize.nnls, on pixels spread over several tiles of
+    # the kernel, split among threads at boundaries that are not tile-aligned,
+    # in every pixel type the kernel is compiled for.
+    rng = np.random.default_rng(n_labels)
+    matrix = np.eye(n_labels + 1, n_labels) + 0.3 * rng.random((n_labels + 1, n_labels))
+    pixels = np.clip(_problems(rng, matrix, 5003) + 50, 0, None)
+    for dtype in (np.float32, np.float64, np.uint16):
+        y = pixels.astype(dtype)
+        ours = Unmixer(matrix).unmix(y, background=np.full(n_labels + 1, 50.0), threads=3)
+        for i in rng.choice(y.shape[1], 300, replace=False):
+            reference, _ = nnls(matrix, y[:, i].astype(np.float64) - 50.0)
+            np.testing.assert_allclose(ours[:, i], reference, atol=1e-3 * np.abs(y[:, i]).max())
 
 
 @pytest.mark.parametrize("matrix, message", [
@@ -147,3 +165,11 @@ def test_nan_pixels_give_nan_everywhere():
 def test_unusable_matrices_refused(matrix, message):
     with pytest.raises(ValueError, match=message):
         Unmixer(matrix)
+
+
+def test_generated_kernels_are_current():
+    # The committed unrolled kernels must be what the generator writes now.
+    from unmix import solve_codegen
+
+    assert solve_codegen.TARGET.read_text(encoding="utf-8") == solve_codegen.source(), \
+        "run: python -m unmix.solve_codegen"

@@ -11,30 +11,32 @@ support set S is ``a_S = (G_SS)^-1 z_S``; it is the NNLS optimum exactly
 when ``a_S >= 0`` and the gradient ``G a - z`` is ``>= 0`` outside S (the
 Karush-Kuhn-Tucker conditions). With K <= 8 labels there are at most 255
 supports, so all their inverses are computed once, embedded in K x K
-matrices. Per pixel the solver tries
+matrices.
 
-1. the full set (the unconstrained solution; most pixels stop here),
-2. the positive part of that solution's support (most of the rest stop here),
-3. Lawson-Hanson active-set iterations on the normal equations (Bro & de
-   Jong's FNNLS), each solve a lookup of a precomputed support inverse,
-4. should all of these fail their KKT test (rounding on an ill-conditioned
-   M), every support by decreasing size.
+The kernels (:mod:`unmix.solve_unrolled`, written by
+:mod:`unmix.solve_codegen`, one per label count, compiled with numba and
+releasing the GIL so that threads run them in parallel) work on tiles of
+1024 pixels. Per tile they form ``z`` in float64, channel by channel, then
+in one loop vectorised over the pixels (SIMD lanes) compute the
+unconstrained solution and, for up to four labels, try every smaller
+support by decreasing size, each pixel keeping the first that satisfies
+the KKT conditions; the loop has no branches, only selects. Pixels left
+over (rounding on an ill-conditioned M; every constrained pixel when K > 4)
+go to the per-pixel exact solver of :mod:`unmix.solve_kernels`: the
+positive part of the unconstrained support, then Lawson-Hanson active-set
+iterations on the precomputed inverses (Bro & de Jong's FNNLS), and should
+those fail their KKT test, every support enumerated keeping the feasible
+one of lowest objective. No residual is formed.
 
-Among supports whose solution is non-negative, the optimum has the lowest
-objective ``-z_S . a_S / 2``; the enumeration keeps the best such candidate,
-so even there the answer is the exact enumeration optimum, never an iterate.
-No residual is formed.
-
-The compiled kernel (numba, releasing the GIL so that threads run it in
-parallel) forms ``z`` per pixel from the stored pixel values, in float64,
-with no temporary arrays, then does K x K work per pixel. Why this form
-(``tests/benchmarks/bench_solve.py``, C=4, K=3, 16 Mpx of float32 with
-realistic noise, 61 % of pixels constrained): about 25 ns per pixel where the
-unconstrained solution is already non-negative and 58 ns per pixel overall;
-a per-pixel ``scipy.optimize.nnls`` loop is 200-400 times slower, a numpy
-scheme grouping pixels by support was about 4 times slower, and a tiled
-branch-free numba variant 2 times slower. It is still 12-16 times the plain
-``pinv(M) @ Y`` product, which remains the target to close.
+Why this form (``tests/benchmarks/bench_solve.py``, C=4, K=3, 16 Mpx of
+float32 with realistic noise, 61 % of pixels constrained, two threads):
+1.7-2x the time of the plain ``pinv(M) @ Y`` product and 1300 times faster
+than a per-pixel ``scipy.optimize.nnls`` loop. The per-pixel solver alone
+(branching per pixel, scalar code) was 9-16x the matmul: a compiler cannot
+vectorise a loop whose body branches on each pixel's support or keeps its
+values in scratch arrays, which is why the label count is fixed per kernel.
+For K > 4 the enumeration grows as 3^K and the per-pixel solver takes the
+constrained pixels (C=32, K=8: about 15x the matmul).
 
 References
 ----------
@@ -125,7 +127,7 @@ class Unmixer:
         if y.shape[0] != self.matrix.shape[0]:
             raise ValueError(f"pixels have {y.shape[0]} channels, the matrix {self.matrix.shape[0]}")
         b = np.zeros(self.matrix.shape[0]) if background is None else np.asarray(background, dtype=np.float64)
-        from .solve_kernels import unmix_pixels
+        from .solve_unrolled import KERNELS
 
         offset = self.matrix.T @ b
         abundances = np.empty((self.n_labels, y.shape[1]), np.float32)
@@ -136,7 +138,7 @@ class Unmixer:
         bounds = np.linspace(0, y.shape[1], max(1, threads) + 1).astype(int)
         # The kernel releases the GIL: split the pixels among threads.
         y = np.ascontiguousarray(y)
-        map_in_threads(unmix_pixels, [
+        map_in_threads(KERNELS[self.n_labels], [
             (y, mt, offset, self.gram, self.support_inverses, self.support_order, constrained, abundances,
              int(lo), int(hi)) for lo, hi in zip(bounds[:-1], bounds[1:]) if hi > lo])
         return abundances.reshape((self.n_labels,) + shape)

@@ -1,4 +1,8 @@
-"""Compiled per-pixel NNLS on the normal equations (numba); see :mod:`unmix.solve`."""
+"""Compiled exact NNLS for one pixel on the normal equations (numba); see :mod:`unmix.solve`.
+
+The vectorised kernels of :mod:`unmix.solve_unrolled` hand over the pixels
+they do not resolve themselves.
+"""
 
 from __future__ import annotations
 
@@ -145,85 +149,3 @@ def _solve_pixel(zk, gram, inverses, order, a, best, spare):
             break
     for j in range(n_labels):
         a[j] = best[j]
-
-
-@njit(cache=True, nogil=True)
-def unmix_pixels(y, mt, offset, gram, inverses, order, constrained, out, start, stop):
-    """Abundances for columns [start, stop) of `y` (C, N), written to `out` (K, N) float32.
-
-    Whole arrays and a column range, not slices, are passed so that threads
-    share C-contiguous arrays (numba compiles slower code for strided views).
-
-    ``z = M^T y - M^T b`` is formed per pixel in float64 (`mt` = M^T,
-    `offset` = M^T b), then solved exactly with ``a >= 0`` (`constrained`)
-    or without. A pixel with a NaN in any channel gives NaN in every label.
-    """
-    n_labels = mt.shape[0]
-    n_channels, n_pixels = y.shape
-    full = (1 << n_labels) - 1
-    zk = np.empty(n_labels)
-    a = np.empty(n_labels)
-    best = np.empty(n_labels)
-    spare = np.empty(n_labels)
-    for i in range(start, stop):
-        finite = True
-        for j in range(n_labels):
-            total = -offset[j]
-            for c in range(n_channels):
-                total += mt[j, c] * y[c, i]
-            zk[j] = total
-            if not np.isfinite(total):
-                finite = False
-        if not finite:
-            for j in range(n_labels):
-                out[j, i] = np.nan
-            continue
-        # The unconstrained solution, written out directly: with LS, or with
-        # NNLS when it is already non-negative (the most common case).
-        negative = False
-        for j in range(n_labels):
-            total = 0.0
-            for m in range(n_labels):
-                total += inverses[full, j, m] * zk[m]
-            out[j, i] = total
-            negative |= total < 0.0
-        if not (constrained and negative):
-            continue
-        # Most of the rest: the positive part of the unconstrained support.
-        positive = 0
-        amax = 0.0
-        scale = 0.0
-        for j in range(n_labels):
-            value = out[j, i]
-            amax = max(amax, abs(value))
-            scale = max(scale, abs(zk[j]))
-            if value > 0:
-                positive |= 1 << j
-        if positive != 0:
-            # Written out rather than through the helpers: in this loop every
-            # helper call binding arrays costs reference counting (~50 ns).
-            tol_a = _RELATIVE_TOLERANCE * amax
-            tol_g = _RELATIVE_TOLERANCE * scale
-            optimal = True
-            for j in range(n_labels):
-                total = 0.0
-                for m in range(n_labels):
-                    total += inverses[positive, j, m] * zk[m]
-                a[j] = total
-                if positive >> j & 1 and total < -tol_a:
-                    optimal = False
-            if optimal:
-                for j in range(n_labels):
-                    if not positive >> j & 1:
-                        gradient = -zk[j]
-                        for m in range(n_labels):
-                            gradient += gram[j, m] * a[m]
-                        if gradient < -tol_g:
-                            optimal = False
-            if optimal:
-                for j in range(n_labels):
-                    out[j, i] = max(a[j], 0.0)
-                continue
-        _solve_pixel(zk, gram, inverses, order, a, best, spare)
-        for j in range(n_labels):
-            out[j, i] = max(a[j], 0.0)
