@@ -37,7 +37,7 @@ import numpy as np
 
 from .atomic import atomic_output, remove_stale_temporaries, temporary_sibling, write_text_atomic
 from .errors import InputError
-from .images import Image, check_axes, is_zarr_path, output_stem, read_images, read_provenance
+from .images import Image, check_axes, is_zarr_path, open_images, output_stem, read_images, read_provenance
 from .matrix import BleedThroughMatrix
 from .solve import Unmixer
 
@@ -93,43 +93,59 @@ def input_fingerprint(path) -> str:
     return digest.hexdigest()
 
 
-def _sample_planes(image: Image, channel: int, most: int = 8) -> np.ndarray:
-    """Up to `most` evenly spaced planes of one channel (a cheap sample of a large stack)."""
+def _sample_blocks(image: Image, settings: "ApplySettings", most: int = 8) -> np.ndarray:
+    """Up to `most` evenly spaced blocks, all channels, channels first: (C, n, Y, X), a cheap
+    sample of a large stack."""
+    from .images import read_block
+
     keys = list(_block_keys(image))
     chosen = [keys[i] for i in np.unique(np.linspace(0, len(keys) - 1, min(most, len(keys))).astype(int))]
-    c_axis = image.channel_axis
-    planes = []
-    for key in chosen:
-        key = list(key)
-        key[c_axis] = channel
-        planes.append(np.asarray(image.data[tuple(key)]))
-    return np.stack(planes)
+    return np.stack([read_block(image.source, image.series, key, channels=image.channel_names, axes=settings.axes,
+                                channel_names=settings.channel_names) for key in chosen], axis=1)
 
 
-def _levels(matrix: BleedThroughMatrix, image: Image, saturation) -> np.ndarray:
-    """Saturation level per channel: given, else the lower of the matrix's and the contract's
-    rule on a sample of this input (the sample may saturate where the controls did not)."""
-    from .levels import per_channel_levels, saturation_level, summarise_channel
+def _provisional_levels(matrix: BleedThroughMatrix, image: Image, saturation) -> np.ndarray:
+    """Saturation level per channel used while unmixing: given, else the matrix's, else the
+    maximum of the pixel type. Without given levels the input's own level (the contract's rule,
+    from the peaks of every block) may turn out lower; see `_final_levels`."""
+    from .levels import per_channel_levels
 
     n = len(matrix.channels)
     if saturation is not None:
         return per_channel_levels(saturation, n, "--saturation")
-    detected = np.array([saturation_level([summarise_channel(_sample_planes(image, c))]) for c in range(n)])
-    return detected if matrix.saturation is None else np.minimum(detected, matrix.saturation)
+    if matrix.saturation is not None:
+        return np.asarray(matrix.saturation, dtype=float)
+    return np.full(n, _max_of_type(image.data.dtype))
 
 
-def _background_for(matrix: BleedThroughMatrix, image: Image, choice: str) -> np.ndarray:
+def _max_of_type(dtype) -> float:
+    dtype = np.dtype(dtype)
+    return float(np.iinfo(dtype).max if dtype.kind in "ui" else np.finfo(dtype).max)
+
+
+def _final_levels(job: "_SeriesJob", peaks, settings: "ApplySettings") -> np.ndarray:
+    """The lower of the provisional level and the input's own level, per channel."""
+    from .levels import level_from_peak
+
+    if settings.saturation is not None:
+        return job.levels
+    detected = np.array([level_from_peak(peak, _max_of_type(job.image.data.dtype)) for peak in peaks])
+    return np.minimum(job.levels, detected)
+
+
+def _background_for(matrix: BleedThroughMatrix, image: Image, settings: "ApplySettings") -> np.ndarray:
     from .levels import reference_levels, summarise_channel
 
+    choice = settings.background
     if choice == "matrix":
         if matrix.background is None:
             raise InputError(f"{image.name}: the matrix has no background (a predicted matrix); "
                              "give --background estimate or --background PATH")
         return matrix.background
     if choice == "estimate":
-        # A sample of planes of every channel: the robust level needs no full pass.
-        return np.array([summarise_channel(_sample_planes(image, c)).background
-                         for c in range(len(matrix.channels))])
+        # A sample of blocks: the robust level needs no full pass.
+        sample = _sample_blocks(image, settings)
+        return np.array([summarise_channel(sample[c]).background for c in range(len(matrix.channels))])
     reference = read_images(choice)[0]
     missing = [c for c in matrix.channels if c not in reference.channel_names]
     if missing:
@@ -167,22 +183,41 @@ def _block_keys(image: Image):
         yield tuple(key)
 
 
+def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
+    """Saturation mask (Y, X) of a block (C, Y, X) at `levels`, and the peak of each channel."""
+    from .levels import ChannelPeak
+    from .levels_kernels import mask_and_peaks
+
+    n = block.shape[0]
+    mask = np.empty(block.shape[1:], np.uint8)
+    maxima, at_maxima, counts = np.empty(n), np.empty(n, np.int64), np.empty(n, np.int64)
+    mask_and_peaks(block.reshape(n, -1), np.asarray(levels, dtype=np.float64), mask.reshape(-1), maxima,
+                   at_maxima, counts)
+    return mask, [ChannelPeak(float(m), int(a), int(c)) for m, a, c in zip(maxima, at_maxima, counts)]
+
+
 def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
                  background, levels, residual: bool):
-    """Read one block from the file, unmix it; returns abundances (K, Y, X) and per-block figures."""
-    import dask
+    """Read one block from the file and unmix it.
 
-    image = read_images(path, axes=axes, channel_names=channel_names, lazy=True)[series]
-    image = image.select_channels(channels)
-    with dask.config.set(scheduler="synchronous"):
-        block = np.asarray(image.data[key])  # (C, Y, X)
-    saturated = np.zeros(block.shape[1:], np.uint8)
-    for c in range(block.shape[0]):
-        saturated |= block[c] >= levels[c]
+    Returns the abundances (K, Y, X), the saturation mask at `levels`, the
+    misfit (or None), the number of NaN pixels and the peak of each channel.
+    """
+    from .images import read_block
+
+    block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)  # (C, Y, X)
     abundances = unmixer.unmix(block, background)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
     misfit = unmixer.residual(block, abundances, background) if residual else None
-    return abundances, saturated, misfit, nan
+    mask, peaks = _mask_and_peaks(block, levels)
+    return abundances, mask, misfit, nan, peaks
+
+
+def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels):
+    from .images import read_block
+
+    return _mask_and_peaks(read_block(path, series, key, channels=channels, axes=axes,
+                                      channel_names=channel_names), levels)[0]
 
 
 def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
@@ -221,6 +256,22 @@ def _planes_writer(blocks, n_labels: int):
             yield block[k]
 
 
+def _early_writeback(planes, handle, every: int = 64 << 20):
+    """Pass `planes` through, asking the kernel every `every` bytes to start writing the file
+    to disk, so that the final fsync (see :mod:`unmix.atomic`) finds little left to do and the
+    disk works while the next blocks are computed."""
+    written = 0
+    for plane in planes:
+        yield plane
+        written += plane.nbytes
+        if written >= every and hasattr(os, "posix_fadvise"):
+            handle.flush()
+            # DONTNEED starts asynchronous write-back of the dirty pages (Linux) and drops
+            # pages already written; it never discards data.
+            os.posix_fadvise(handle.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
+            written = 0
+
+
 @dataclass(frozen=True)
 class _SeriesJob:
     """One series of an input, ready to unmix."""
@@ -232,22 +283,69 @@ class _SeriesJob:
     provenance: dict
 
 
+@dataclass
+class _SeriesTally:
+    """What the blocks of one series add up to."""
+
+    nan: int = 0
+    saturated: int = 0
+    peaks: list | None = None  # one ChannelPeak per channel
+
+    def add(self, nan: int, saturated: np.ndarray, peaks) -> None:
+        self.nan += nan
+        self.saturated += int(np.count_nonzero(saturated))
+        self.peaks = list(peaks) if self.peaks is None else [a + b for a, b in zip(self.peaks, peaks)]
+
+
+def _in_batches(keys: list, size: int, task, task_arguments, compute):
+    """Yield (key, task result) in order, computing `size` keys at a time; the next batch is
+    computed while the caller handles this one (reading, computing and writing overlap)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    batches = [keys[start:start + size] for start in range(0, len(keys), size)]
+    if not batches:
+        return
+    with ThreadPoolExecutor(max_workers=1) as ahead:
+        pending = ahead.submit(compute, task, [task_arguments(key) for key in batches[0]])
+        for index, batch in enumerate(batches):
+            results = pending.result()
+            if index + 1 < len(batches):
+                pending = ahead.submit(compute, task, [task_arguments(key) for key in batches[index + 1]])
+            yield from zip(batch, results)
+
+
+def _task_source(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settings: ApplySettings) -> tuple:
+    """The leading task arguments that say which file, series and channels to read."""
+    return str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels)
+
+
 def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, unmixer: Unmixer,
-                     settings: ApplySettings, compute, totals: dict):
+                     settings: ApplySettings, compute, tally: _SeriesTally):
     """Yield (key, abundances, saturation mask, misfit or None) per block of a series, in order.
 
-    Blocks are computed `settings.batch_blocks` at a time; NaN and saturated
-    pixel counts are added to `totals`.
+    NaN and saturated pixel counts and the channel peaks are added to `tally`.
     """
-    keys = list(_block_keys(job.image))
-    for start in range(0, len(keys), settings.batch_blocks):
-        batch = keys[start:start + settings.batch_blocks]
-        results = compute([(str(path), job.index, settings.axes, settings.channel_names, list(matrix.channels),
-                            key, unmixer, job.background, job.levels, settings.residual) for key in batch])
-        for key, (abundances, saturated, misfit, nan) in zip(batch, results):
-            totals["nan"] += nan
-            totals["saturated"] += int(saturated.sum())
-            yield key, abundances, saturated, misfit
+    source = _task_source(job, path, matrix, settings)
+    for key, (abundances, saturated, misfit, nan, peaks) in _in_batches(
+            list(_block_keys(job.image)), settings.batch_blocks, _unmix_block,
+            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual), compute):
+        tally.add(nan, saturated, peaks)
+        yield key, abundances, saturated, misfit
+
+
+def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settings: ApplySettings,
+                      levels: np.ndarray, compute, tally: _SeriesTally):
+    """Yield (key, saturation mask at `levels`) per block, recounting `tally.saturated`.
+
+    Needed only when the input saturates below the level the blocks were
+    masked at (a second, reading-only pass).
+    """
+    source = _task_source(job, path, matrix, settings)
+    tally.saturated = 0
+    for key, mask in _in_batches(list(_block_keys(job.image)), settings.batch_blocks, _mask_block,
+                                 lambda key: (*source, key, levels), compute):
+        tally.saturated += int(np.count_nonzero(mask))
+        yield key, mask
 
 
 class _PlaneSpool:
@@ -296,7 +394,7 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
 
     import tifffile
 
-    totals = {"nan": 0, "saturated": 0}
+    tallies = [_SeriesTally() for _ in jobs]
 
     def layout(image: Image, n_channels: int):
         leading = "".join(a for a in image.axes if a not in "CYX")
@@ -306,13 +404,18 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     def physical(image: Image) -> dict:
         return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
 
-    def blocks(job: _SeriesJob, maps: dict):
+    def blocks(job: _SeriesJob, maps: dict, tally: _SeriesTally):
         for _, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings, compute,
-                                                                 totals):
+                                                                 tally):
             maps["saturation"].append(saturated)
             if misfit is not None:
                 maps["residual"].append(misfit)
             yield abundances
+
+    def map_planes(kind: str, job: _SeriesJob, maps: dict, tally: _SeriesTally, levels: np.ndarray):
+        if kind == "saturation" and np.any(levels < job.levels):
+            return (mask for _, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally))
+        return maps[kind].planes(job.image.data.shape[-2:])
 
     kinds = {"saturation": (np.uint8, "saturated"), "residual": (np.float32, "residual_rms")}
     if not settings.residual:
@@ -327,29 +430,37 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
                 maps[kind] = scratch.enter_context(_PlaneSpool(temporary_sibling(names[kind]), dtype))
             maps_per_series.append(maps)
         total_bytes = sum(np.prod(layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4 for job in jobs)
-        with atomic_output(names["unmixed"]) as tmp:
-            with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
-                for job, maps in zip(jobs, maps_per_series):
+        with atomic_output(names["unmixed"]) as tmp, open(tmp, "wb") as handle:
+            with tifffile.TiffWriter(handle, ome=True, bigtiff=total_bytes > 2**31) as writer:
+                for job, maps, tally in zip(jobs, maps_per_series, tallies):
                     axes, shape = layout(job.image, len(matrix.labels))
-                    writer.write(_planes_writer(blocks(job, maps), len(matrix.labels)),
+                    writer.write(_early_writeback(_planes_writer(blocks(job, maps, tally), len(matrix.labels)),
+                                                  handle),
                                  shape=shape, dtype=np.float32, photometric="minisblack",
                                  metadata={"axes": axes, "Channel": {"Name": list(matrix.labels)},
                                            "Description": json.dumps(job.provenance, sort_keys=True),
                                            **physical(job.image)})
-        descriptions = {"saturation": {"of": names["unmixed"].name, "levels": [float(v) for v in jobs[0].levels]},
-                        "residual": {"of": names["unmixed"].name}}
+        levels = [_final_levels(job, tally.peaks, settings) for job, tally in zip(jobs, tallies)]
         for kind, (_, channel) in kinds.items():
             with atomic_output(names[kind]) as tmp:
                 with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
-                    for job, maps in zip(jobs, maps_per_series):
+                    for job, maps, tally, series_levels in zip(jobs, maps_per_series, tallies, levels):
                         axes, shape = layout(job.image, 1)
-                        writer.write(maps[kind].planes(shape[-2:]), shape=shape, dtype=kinds[kind][0],
-                                     photometric="minisblack",
+                        description = {"of": names["unmixed"].name}
+                        if kind == "saturation":
+                            description["levels"] = [float(v) for v in series_levels]
+                        writer.write(map_planes(kind, job, maps, tally, series_levels), shape=shape,
+                                     dtype=kinds[kind][0], photometric="minisblack",
+                                     # Masks are mostly zeros: the fastest zlib level packs them well.
                                      compression="zlib" if kind == "saturation" else None,
+                                     compressionargs={"level": 1} if kind == "saturation" else None,
                                      metadata={"axes": axes, "Channel": {"Name": [channel]},
-                                               "Description": json.dumps(descriptions[kind]),
-                                               **physical(job.image)})
-    return totals
+                                               "Description": json.dumps(description), **physical(job.image)})
+    return _totals(tallies)
+
+
+def _totals(tallies) -> dict:
+    return {"nan": sum(t.nan for t in tallies), "saturated": sum(t.saturated for t in tallies)}
 
 
 def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
@@ -360,7 +471,7 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
     import zarr
     from ome_zarr.writer import write_multiscales_metadata
 
-    totals = {"nan": 0, "saturated": 0}
+    tallies = []
     kinds = ["unmixed", "saturation"] + (["residual"] if settings.residual else [])
     channels = {"unmixed": list(matrix.labels), "saturation": ["saturated"], "residual": ["residual_rms"]}
     dtypes = {"unmixed": np.float32, "saturation": np.uint8, "residual": np.float32}
@@ -387,13 +498,19 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
                     {"type": "scale", "scale": scale}]}], axes=axes)
                 _add_zarr_attrs(group, {"omero": {"channels": [{"label": n, "active": True} for n in channels[kind]]}})
                 group.attrs["unmix_provenance"] = job.provenance if kind == "unmixed" else {"of": names["unmixed"].name}
+            tallies.append(tally := _SeriesTally())
             for key, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings,
-                                                                       compute, totals):
+                                                                       compute, tally):
                 arrays["unmixed"][key] = abundances
                 arrays["saturation"][key] = saturated[None]
                 if misfit is not None:
                     arrays["residual"][key] = misfit[None]
-    return totals
+            levels = _final_levels(job, tally.peaks, settings)
+            if np.any(levels < job.levels):
+                for key, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally):
+                    arrays["saturation"][key] = mask[None]
+            arrays["saturation"].attrs["unmix_saturation_levels"] = [float(v) for v in levels]
+    return _totals(tallies)
 
 
 def _add_zarr_attrs(group, extra: dict) -> None:
@@ -404,16 +521,16 @@ def _add_zarr_attrs(group, extra: dict) -> None:
         group.attrs.update(extra)
 
 
-def _local_compute(argument_lists):
+def _local_compute(task, argument_lists):
     import dask
 
-    tasks = [dask.delayed(_unmix_block, pure=False)(*arguments) for arguments in argument_lists]
+    tasks = [dask.delayed(task, pure=False)(*arguments) for arguments in argument_lists]
     return dask.compute(*tasks, scheduler="threads")
 
 
 def _distributed_compute(client):
-    def compute(argument_lists):
-        futures = [client.submit(_unmix_block, *arguments, pure=False) for arguments in argument_lists]
+    def compute(task, argument_lists):
+        futures = [client.submit(task, *arguments, pure=False) for arguments in argument_lists]
         return client.gather(futures)
 
     return compute
@@ -486,9 +603,10 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     if progress is not None:
         compute_blocks = compute
 
-        def compute(argument_lists):
-            results = compute_blocks(argument_lists)
-            progress(len(argument_lists))
+        def compute(task, argument_lists):
+            results = compute_blocks(task, argument_lists)
+            if task is _unmix_block:
+                progress(len(argument_lists))
             return results
 
     manifest_path = outdir / MANIFEST
@@ -507,6 +625,9 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     finally:
         if client is not None:
             client.close()
+        from .images import close_block_sources
+
+        close_block_sources()
     return results
 
 
@@ -530,35 +651,8 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
                compute) -> FileResult:
     names = _output_names(outdir, stem, is_zarr_path(path))
     try:
-        images = read_images(path, axes=settings.axes, channel_names=settings.channel_names, lazy=True)
-        fingerprint = input_fingerprint(path)
-        if names["unmixed"].exists():
-            try:
-                existing = read_provenance(names["unmixed"])
-            except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
-                existing = None
-            same = _same_run(existing, matrix_sha, fingerprint, settings)
-            complete = names["saturation"].exists() and (names["residual"].exists() or not settings.residual)
-            if same and complete:
-                return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
-            if not same and not settings.overwrite:
-                raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
-                                 "pass --overwrite to replace it or choose another -o")
-            # Same run, interrupted before its mask was written: done again below.
-        jobs = []
-        for image in images:
-            image = _matched(matrix, image)
-            background = _background_for(matrix, image, settings.background)
-            jobs.append(_SeriesJob(image, image.series, background, _levels(matrix, image, settings.saturation),
-                                   _provenance(matrix, matrix_sha, path, fingerprint, settings, background,
-                                               image.series)))
-        outdir.mkdir(parents=True, exist_ok=True)
-        write = _write_zarr_outputs if is_zarr_path(path) else _write_outputs
-        totals = write(jobs, matrix, unmixer, path, settings, names, compute)
-        pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
-                     for job in jobs)
-        return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],
-                          saturated_pixels=totals["saturated"], pixels=pixels)
+        with open_images(path, axes=settings.axes, channel_names=settings.channel_names) as images:
+            return _unmix_file(images, matrix, unmixer, matrix_sha, path, names, outdir, settings, compute)
     except InputError as exc:
         return FileResult(str(path), None, "failed", str(exc))
     except OSError as exc:
@@ -566,3 +660,35 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
             raise
         return FileResult(str(path), None, "failed",
                           f"{names['unmixed']}: cannot write ({exc.strerror}); free space or choose another -o")
+
+
+def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, names: dict, outdir: Path,
+                settings: ApplySettings, compute) -> FileResult:
+    fingerprint = input_fingerprint(path)
+    if names["unmixed"].exists():
+        try:
+            existing = read_provenance(names["unmixed"])
+        except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
+            existing = None
+        same = _same_run(existing, matrix_sha, fingerprint, settings)
+        complete = names["saturation"].exists() and (names["residual"].exists() or not settings.residual)
+        if same and complete:
+            return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
+        if not same and not settings.overwrite:
+            raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
+                             "pass --overwrite to replace it or choose another -o")
+        # Same run, interrupted before its mask was written: done again below.
+    jobs = []
+    for image in images:
+        image = _matched(matrix, image)
+        background = _background_for(matrix, image, settings)
+        jobs.append(_SeriesJob(image, image.series, background,
+                               _provisional_levels(matrix, image, settings.saturation),
+                               _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series)))
+    outdir.mkdir(parents=True, exist_ok=True)
+    write = _write_zarr_outputs if is_zarr_path(path) else _write_outputs
+    totals = write(jobs, matrix, unmixer, path, settings, names, compute)
+    pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
+                 for job in jobs)
+    return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],
+                      saturated_pixels=totals["saturated"], pixels=pixels)

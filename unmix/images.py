@@ -19,8 +19,10 @@ through ``zarr`` for OME-Zarr (NGFF 0.4 and 0.5 metadata).
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
+import threading
 import xml.etree.ElementTree as ElementTree
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -162,7 +164,7 @@ def is_zarr_path(path: Path) -> bool:
 
 
 def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
-                lazy: bool = False) -> list[Image]:
+                lazy: bool = False, _open_files: list | None = None) -> list[Image]:
     """Read every series (position) of a TIFF, OME-TIFF or OME-Zarr file.
 
     Parameters
@@ -199,7 +201,7 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
     elif path.is_dir():
         raise InputError(f"{path}: is a folder but not an OME-Zarr image; give a TIFF file or an OME-Zarr folder")
     else:
-        images = _read_tiff(path, axes, lazy)
+        images = _read_tiff(path, axes, lazy, _open_files)
     return [_apply_overrides(im, channel_names) for im in images]
 
 
@@ -210,6 +212,17 @@ def read_image(path, *, axes: str | None = None, channel_names: Sequence[str] | 
     if not 0 <= series < len(images):
         raise InputError(f"{path}: has {len(images)} series; series {series} does not exist")
     return images[series]
+
+
+@contextlib.contextmanager
+def open_images(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None):
+    """Lazy images of every series of a file (see :func:`read_images`); the file is closed on exit."""
+    open_files: list = []
+    try:
+        yield read_images(path, axes=axes, channel_names=channel_names, lazy=True, _open_files=open_files)
+    finally:
+        for handle in open_files:
+            handle.close()
 
 
 # --- TIFF -------------------------------------------------------------------
@@ -277,7 +290,7 @@ def _tiff_axes(tif, series, axes_override: str | None, path: Path) -> str:
     )
 
 
-def _read_tiff(path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
+def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: list | None = None) -> list[Image]:
     import tifffile
 
     logger = logging.getLogger("tifffile")
@@ -309,6 +322,8 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool) -> list[Image]
             raise InputError(f"{path}: damaged or unsupported TIFF ({_short(exc)}); check the file") from None
         if not lazy:
             tif.close()
+        elif open_files is not None:
+            open_files.append(tif)
     finally:
         logger.removeHandler(capture)
         logger.propagate = propagate
@@ -441,6 +456,99 @@ def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: 
         names = _default_channel_names(n_channels)
     return Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
                  source=str(path), series=index)
+
+
+# --- Reading blocks -----------------------------------------------------------
+
+def read_block(path, series: int, key: tuple, *, channels: Sequence[str], axes: str | None = None,
+               channel_names: Sequence[str] | None = None) -> np.ndarray:
+    """One block of one series of an image file as a numpy array.
+
+    `key` indexes the canonical axes (see :class:`Image`) of the image
+    restricted to `channels` (names, in that order). Meant for reading a
+    file block after block from many tasks: the file's metadata are parsed
+    once per process, and TIFF blocks are read page by page with tifffile
+    (several times faster than through the lazy dask array); other layouts
+    go through the lazy array.
+    """
+    path = Path(path)
+    stat = path.stat()
+    source = _block_source(str(path), (stat.st_mtime_ns, stat.st_size), series, axes,
+                           None if channel_names is None else tuple(channel_names), tuple(channels))
+    return source.read(key)
+
+
+def close_block_sources() -> None:
+    """Close the files :func:`read_block` keeps open (call when no read is in progress)."""
+    with _BLOCK_SOURCES_LOCK:
+        sources = list(_BLOCK_SOURCES.values())
+        _BLOCK_SOURCES.clear()
+    for source in sources:
+        source.close()
+
+
+class _BlockSource:
+    def __init__(self, image: Image, tif=None, pages: np.ndarray | None = None):
+        self.image, self.tif, self.pages = image, tif, pages
+
+    def close(self) -> None:
+        if self.tif is not None:
+            self.tif.close()
+
+    def read(self, key: tuple) -> np.ndarray:
+        if self.pages is None:
+            import dask
+
+            with dask.config.set(scheduler="synchronous"):
+                return np.asarray(self.image.data[key])
+        pages = self.pages[key]
+        planes = self.tif.asarray(key=[int(i) for i in pages.ravel()], series=self.image.series, maxworkers=1)
+        return planes.reshape(pages.shape[:-2] + planes.shape[-2:])
+
+
+# Files recently read by blocks, most recent last; `stamp` (modification time, size) is part
+# of the key, so an edited file is parsed again.
+_BLOCK_SOURCES: dict = {}
+_BLOCK_SOURCES_LOCK = threading.Lock()
+_BLOCK_SOURCES_KEPT = 8
+
+
+def _block_source(*key) -> _BlockSource:
+    with _BLOCK_SOURCES_LOCK:
+        source = _BLOCK_SOURCES.pop(key, None)
+        if source is not None:
+            _BLOCK_SOURCES[key] = source
+            return source
+    source = _open_block_source(*key)
+    with _BLOCK_SOURCES_LOCK:
+        kept = _BLOCK_SOURCES.setdefault(key, source)
+        # Evict the least recently used; batches read files one after another, so it is idle.
+        evicted = [_BLOCK_SOURCES.pop(k) for k in list(_BLOCK_SOURCES)[:-_BLOCK_SOURCES_KEPT]]
+    for old in evicted + ([source] if kept is not source else []):
+        old.close()
+    return kept
+
+
+def _open_block_source(path: str, stamp, series: int, axes, channel_names, channels) -> _BlockSource:
+    open_files: list = []
+    image = read_images(path, axes=axes, channel_names=channel_names, lazy=True, _open_files=open_files)[series]
+    indices = [image.channel_names.index(name) for name in channels]
+    image = image.select_channels(channels)
+    if not open_files:  # OME-Zarr
+        return _BlockSource(image)
+    tif = open_files[0]
+    tif.filehandle.set_lock(True)  # tasks on several threads read through this handle
+    stored = tif.series[series]
+    stored_axes = _tiff_axes(tif, stored, axes, Path(path))
+    page_shape = stored.pages[0].shape if len(stored.pages) else ()
+    # Page by page only when every page is one Y-X plane of the series, in C order of the
+    # leading dimensions (pages holding samples per pixel go through the lazy array).
+    if tuple(stored.shape[-2:]) != tuple(page_shape) or len(stored.pages) != int(np.prod(stored.shape[:-2])):
+        return _BlockSource(image, tif)
+    pages = np.arange(len(stored.pages)).reshape(tuple(stored.shape[:-2]) + (1, 1))
+    pages, canonical = to_canonical(pages, stored_axes)
+    pages = np.take(pages, indices, axis=canonical.index("C"))
+    return _BlockSource(image, tif, pages)
 
 
 # --- Writing ----------------------------------------------------------------

@@ -146,15 +146,34 @@ def saturation_level(summaries) -> float:
     at 2047.) Pixels at or above the level are saturated.
     """
     summaries = list(summaries)
-    total = sum(s.n_pixels for s in summaries)
     maximum = max((s.maximum for s in summaries if s.n_pixels), default=float("nan"))
-    for candidate in SATURATION_CANDIDATES:
-        if candidate < maximum:
-            break
-        at_level = sum(s.candidate_counts.get(candidate, 0) for s in summaries)
-        if candidate == maximum and at_level >= SATURATION_MIN_FRACTION * total:
-            return float(candidate)
-    return min(s.max_of_type for s in summaries)
+    at_maximum = sum(s.candidate_counts.get(maximum, 0) for s in summaries)
+    return level_from_peak(ChannelPeak(maximum, at_maximum, sum(s.n_pixels for s in summaries)),
+                           min(s.max_of_type for s in summaries))
+
+
+@dataclass(frozen=True)
+class ChannelPeak:
+    """The top of one channel's histogram: all that the saturation rule needs.
+
+    Peaks of parts of a channel (blocks of a stack) combine with ``+``.
+    """
+
+    maximum: float
+    at_maximum: int
+    n_pixels: int
+
+    def __add__(self, other: "ChannelPeak") -> "ChannelPeak":
+        maximum = max(self.maximum, other.maximum)
+        at_maximum = sum(p.at_maximum for p in (self, other) if p.maximum == maximum)
+        return ChannelPeak(maximum, at_maximum, self.n_pixels + other.n_pixels)
+
+
+def level_from_peak(peak: ChannelPeak, max_of_type: float) -> float:
+    """The contract's saturation rule (see :func:`saturation_level`) from a channel's peak."""
+    if peak.maximum in SATURATION_CANDIDATES and peak.at_maximum >= SATURATION_MIN_FRACTION * peak.n_pixels:
+        return float(peak.maximum)
+    return float(max_of_type)
 
 
 def per_channel_levels(saturation, n_channels: int, what: str) -> np.ndarray | None:

@@ -13,6 +13,7 @@ measured in this run.
 from __future__ import annotations
 
 import argparse
+import os
 import subprocess
 import sys
 import tempfile
@@ -58,7 +59,12 @@ def make_batch(folder: Path, files: int, planes: int, size: int) -> tuple[list[s
 
 
 def peak_rss_of(command: list[str]) -> tuple[float, int]:
-    """Wall time and peak resident memory (bytes) of a child process."""
+    """Wall time and peak resident memory (bytes) of a child process.
+
+    Dirty pages left by the previous run are flushed first (not timed), so
+    that no run pays for writing out another's files.
+    """
+    os.sync()
     start = time.perf_counter()
     completed = subprocess.run(["/usr/bin/time", "-f", "%M", *command], capture_output=True, text=True)
     elapsed = time.perf_counter() - start
