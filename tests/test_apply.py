@@ -350,3 +350,33 @@ def test_background_estimated_or_from_a_dark_frame(choice, tmp_path, demo, demo_
         np.testing.assert_allclose(levels, offset, atol=0.5)
     else:  # the sample's own background: offset plus some autofluorescence
         assert all(offset - 1 <= level <= offset + 25 for level in levels)
+
+
+@pytest.mark.parametrize("pile_up", [4095, 255])
+@pytest.mark.parametrize("container", ["tiff", "zarr"])
+def test_saturation_mask_at_the_contract_level(tmp_path, capsys, pile_up, container):
+    # Reference: numpy comparisons on the input at the level the contract's rule gives: the
+    # matrix's 4095, or lower when the input itself piles up at 255 (an 8-bit converter).
+    from unmix.images import Image, write_ome_zarr
+
+    matrix = BleedThroughMatrix(kind="measured", channels=("a", "b"), labels=("P", "Q"), primary={"P": "a", "Q": "b"},
+                                matrix=np.array([[1.0, 0.2], [0.3, 1.0]]), background=np.array([10.0, 10.0]),
+                                background_source="dark", saturation=np.array([4095.0, 4095.0]))
+    matrix_path = matrix.save(tmp_path / "m.json")
+    rng = np.random.default_rng(2)
+    data = rng.integers(20, pile_up - 5, size=(3, 2, 30, 40)).astype(np.uint16)  # Z C Y X
+    data[1, 1, 5:8, 5:9] = pile_up   # 12 pixels, 0.33 % of the channel: a pile-up
+    data[2, 0, 20, 30] = pile_up
+    if container == "tiff":
+        source = _stack_file(tmp_path / "s.ome.tif", data, "ZCYX", "ab")
+        mask_path = tmp_path / "out" / "s.saturation.ome.tif"
+    else:
+        source = write_ome_zarr(tmp_path / "s.ome.zarr", Image(np.moveaxis(data, 1, 0), "CZYX", ("a", "b")))
+        mask_path = tmp_path / "out" / "s.saturation.ome.zarr"
+    code, _, err = _run(["apply", "--matrix", matrix_path, source, "-o", tmp_path / "out", "--quiet"], capsys)
+    assert code == 0, err
+    expected = np.any(data >= pile_up, axis=1).astype(np.uint8)
+    mask = read_image(mask_path)
+    np.testing.assert_array_equal(np.asarray(mask.data)[0], expected)
+    manifest = json.loads((tmp_path / "out" / "unmix-manifest.json").read_text())
+    assert next(iter(manifest["outputs"].values()))["saturated_pixels"] == int(expected.sum()) == 13

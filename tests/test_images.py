@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 import tifffile
@@ -133,3 +135,62 @@ def test_failed_write_leaves_nothing_behind(tmp_path, monkeypatch):
     with pytest.raises(OSError):
         write_ome_tiff(tmp_path / "out.ome.tif", image)
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("layout", ["ome-zcyx", "ome-tczyx", "imagej-tzcyx", "plain-cyx", "axes-override", "rgb",
+                                    "planar-cyx"])
+def test_read_block_equals_the_lazy_array(tmp_path, layout):
+    # Reference: tifffile's own reading of the whole series (through read_images), for page
+    # layouts that read_block maps to pages and for one it must hand to the lazy array (RGB).
+    import tifffile
+
+    from unmix.images import close_block_sources, read_block
+
+    rng = np.random.default_rng(1)
+    path = tmp_path / "stack.tif"
+    axes = None
+    if layout == "ome-zcyx":
+        tifffile.imwrite(path, rng.integers(0, 4000, (5, 3, 16, 20), dtype=np.uint16), ome=True,
+                         metadata={"axes": "ZCYX", "Channel": {"Name": ["a", "b", "c"]}})
+    elif layout == "ome-tczyx":
+        tifffile.imwrite(path, rng.random((2, 3, 4, 16, 20), dtype=np.float32), ome=True,
+                         metadata={"axes": "TCZYX", "Channel": {"Name": ["a", "b", "c"]}})
+    elif layout == "imagej-tzcyx":
+        tifffile.imwrite(path, rng.integers(0, 255, (2, 4, 3, 16, 20), dtype=np.uint8), imagej=True,
+                         metadata={"axes": "TZCYX"})
+    elif layout == "plain-cyx":
+        tifffile.imwrite(path, rng.integers(0, 4000, (3, 16, 20), dtype=np.uint16), photometric="minisblack")
+    elif layout == "axes-override":
+        tifffile.imwrite(path, rng.integers(0, 4000, (4, 3, 16, 20), dtype=np.uint16), photometric="minisblack")
+        axes = "ZCYX"
+    elif layout == "planar-cyx":  # one page holding three planes
+        tifffile.imwrite(path, rng.integers(0, 4000, (3, 16, 20), dtype=np.uint16), photometric="rgb",
+                         planarconfig="separate")
+    else:
+        tifffile.imwrite(path, rng.integers(0, 255, (16, 20, 3), dtype=np.uint8), photometric="rgb")
+    image = read_images(path, axes=axes)[0]
+    names = list(image.channel_names)
+    chosen = [names[2], names[0]] if len(names) > 2 else names[::-1]
+    reference = image.select_channels(chosen)
+    leading = [a for a in reference.axes if a not in "CYX"]
+    for position in np.ndindex(*[reference.data.shape[reference.axes.index(a)] for a in leading]):
+        it = iter(position)
+        key = tuple(next(it) if a not in "CYX" else slice(None) for a in reference.axes)
+        block = read_block(path, 0, key, channels=chosen, axes=axes)
+        np.testing.assert_array_equal(block, reference.data[key])
+    close_block_sources()
+
+
+def test_read_block_sees_a_replaced_file(tmp_path):
+    import tifffile
+
+    from unmix.images import close_block_sources, read_block
+
+    path = tmp_path / "s.tif"
+    tifffile.imwrite(path, np.zeros((2, 8, 8), np.uint16))
+    key = (slice(None), slice(None), slice(None))
+    assert read_block(path, 0, key, channels=["ch0", "ch1"]).max() == 0
+    os.utime(path, ns=(1, 1))  # a different modification time, as a copy over the file would give
+    tifffile.imwrite(path, np.full((2, 8, 8), 7, np.uint16))
+    assert read_block(path, 0, key, channels=["ch0", "ch1"]).max() == 7
+    close_block_sources()
