@@ -16,7 +16,7 @@ matrices.
 The kernels (:mod:`unmix.solve_unrolled`, written by
 :mod:`unmix.solve_codegen`, one per label count, compiled with numba and
 releasing the GIL so that threads run them in parallel) work on tiles of
-1024 pixels. Per tile they form ``z`` in float64, channel by channel, then
+1024 pixels. Per tile they form ``z`` in float64, four channels per pass, then
 in one loop vectorised over the pixels (SIMD lanes) compute the
 unconstrained solution and, for up to four labels, try every smaller
 support by decreasing size, each pixel keeping the first that satisfies
@@ -30,8 +30,8 @@ one of lowest objective. No residual is formed.
 
 Why this form (``tests/benchmarks/bench_solve.py``, C=4, K=3, 16 Mpx of
 float32 with realistic noise, 61 % of pixels constrained, two threads):
-1.7-2x the time of the plain ``pinv(M) @ Y`` product and 1300 times faster
-than a per-pixel ``scipy.optimize.nnls`` loop. The per-pixel solver alone
+1.4-1.7x the time of the plain ``pinv(M) @ Y`` product and 1300-1550 times
+faster than a per-pixel ``scipy.optimize.nnls`` loop. The per-pixel solver alone
 (branching per pixel, scalar code) was 9-16x the matmul: a compiler cannot
 vectorise a loop whose body branches on each pixel's support or keeps its
 values in scratch arrays, which is why the label count is fixed per kernel.

@@ -24,17 +24,32 @@ def unmix_k1(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     f0_0 = inverses[1, 0, 0]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -96,20 +111,40 @@ def unmix_k2(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     g1_0 = gram[1, 0]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -219,23 +254,48 @@ def unmix_k3(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     g2_1 = gram[2, 1]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            m2 = mt[2, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-                    tile[2 * _TILE + i] = m2 * v - o2
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
-                    tile[2 * _TILE + i] += m2 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+            tile[2 * _TILE + i] = -o2
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            m2_1 = mt[2, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            m2_2 = mt[2, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            m2_3 = mt[2, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+                tile[2 * _TILE + i] += m2_0 * v0 + m2_1 * v1 + m2_2 * v2 + m2_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+                tile[2 * _TILE + i] += m2_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -454,26 +514,56 @@ def unmix_k4(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     g3_2 = gram[3, 2]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            m2 = mt[2, c]
-            m3 = mt[3, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-                    tile[2 * _TILE + i] = m2 * v - o2
-                    tile[3 * _TILE + i] = m3 * v - o3
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
-                    tile[2 * _TILE + i] += m2 * v
-                    tile[3 * _TILE + i] += m3 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+            tile[2 * _TILE + i] = -o2
+            tile[3 * _TILE + i] = -o3
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            m2_1 = mt[2, c + 1]
+            m3_1 = mt[3, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            m2_2 = mt[2, c + 2]
+            m3_2 = mt[3, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            m2_3 = mt[2, c + 3]
+            m3_3 = mt[3, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+                tile[2 * _TILE + i] += m2_0 * v0 + m2_1 * v1 + m2_2 * v2 + m2_3 * v3
+                tile[3 * _TILE + i] += m3_0 * v0 + m3_1 * v1 + m3_2 * v2 + m3_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+                tile[2 * _TILE + i] += m2_0 * v0
+                tile[3 * _TILE + i] += m3_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -720,29 +810,64 @@ def unmix_k5(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     f4_4 = inverses[31, 4, 4]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            m2 = mt[2, c]
-            m3 = mt[3, c]
-            m4 = mt[4, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-                    tile[2 * _TILE + i] = m2 * v - o2
-                    tile[3 * _TILE + i] = m3 * v - o3
-                    tile[4 * _TILE + i] = m4 * v - o4
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
-                    tile[2 * _TILE + i] += m2 * v
-                    tile[3 * _TILE + i] += m3 * v
-                    tile[4 * _TILE + i] += m4 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+            tile[2 * _TILE + i] = -o2
+            tile[3 * _TILE + i] = -o3
+            tile[4 * _TILE + i] = -o4
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            m2_1 = mt[2, c + 1]
+            m3_1 = mt[3, c + 1]
+            m4_1 = mt[4, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            m2_2 = mt[2, c + 2]
+            m3_2 = mt[3, c + 2]
+            m4_2 = mt[4, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            m2_3 = mt[2, c + 3]
+            m3_3 = mt[3, c + 3]
+            m4_3 = mt[4, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+                tile[2 * _TILE + i] += m2_0 * v0 + m2_1 * v1 + m2_2 * v2 + m2_3 * v3
+                tile[3 * _TILE + i] += m3_0 * v0 + m3_1 * v1 + m3_2 * v2 + m3_3 * v3
+                tile[4 * _TILE + i] += m4_0 * v0 + m4_1 * v1 + m4_2 * v2 + m4_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+                tile[2 * _TILE + i] += m2_0 * v0
+                tile[3 * _TILE + i] += m3_0 * v0
+                tile[4 * _TILE + i] += m4_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -878,32 +1003,72 @@ def unmix_k6(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     f5_5 = inverses[63, 5, 5]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            m2 = mt[2, c]
-            m3 = mt[3, c]
-            m4 = mt[4, c]
-            m5 = mt[5, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-                    tile[2 * _TILE + i] = m2 * v - o2
-                    tile[3 * _TILE + i] = m3 * v - o3
-                    tile[4 * _TILE + i] = m4 * v - o4
-                    tile[5 * _TILE + i] = m5 * v - o5
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
-                    tile[2 * _TILE + i] += m2 * v
-                    tile[3 * _TILE + i] += m3 * v
-                    tile[4 * _TILE + i] += m4 * v
-                    tile[5 * _TILE + i] += m5 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+            tile[2 * _TILE + i] = -o2
+            tile[3 * _TILE + i] = -o3
+            tile[4 * _TILE + i] = -o4
+            tile[5 * _TILE + i] = -o5
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            m5_0 = mt[5, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            m2_1 = mt[2, c + 1]
+            m3_1 = mt[3, c + 1]
+            m4_1 = mt[4, c + 1]
+            m5_1 = mt[5, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            m2_2 = mt[2, c + 2]
+            m3_2 = mt[3, c + 2]
+            m4_2 = mt[4, c + 2]
+            m5_2 = mt[5, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            m2_3 = mt[2, c + 3]
+            m3_3 = mt[3, c + 3]
+            m4_3 = mt[4, c + 3]
+            m5_3 = mt[5, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+                tile[2 * _TILE + i] += m2_0 * v0 + m2_1 * v1 + m2_2 * v2 + m2_3 * v3
+                tile[3 * _TILE + i] += m3_0 * v0 + m3_1 * v1 + m3_2 * v2 + m3_3 * v3
+                tile[4 * _TILE + i] += m4_0 * v0 + m4_1 * v1 + m4_2 * v2 + m4_3 * v3
+                tile[5 * _TILE + i] += m5_0 * v0 + m5_1 * v1 + m5_2 * v2 + m5_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            m5_0 = mt[5, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+                tile[2 * _TILE + i] += m2_0 * v0
+                tile[3 * _TILE + i] += m3_0 * v0
+                tile[4 * _TILE + i] += m4_0 * v0
+                tile[5 * _TILE + i] += m5_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -1065,35 +1230,80 @@ def unmix_k7(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     f6_6 = inverses[127, 6, 6]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            m2 = mt[2, c]
-            m3 = mt[3, c]
-            m4 = mt[4, c]
-            m5 = mt[5, c]
-            m6 = mt[6, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-                    tile[2 * _TILE + i] = m2 * v - o2
-                    tile[3 * _TILE + i] = m3 * v - o3
-                    tile[4 * _TILE + i] = m4 * v - o4
-                    tile[5 * _TILE + i] = m5 * v - o5
-                    tile[6 * _TILE + i] = m6 * v - o6
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
-                    tile[2 * _TILE + i] += m2 * v
-                    tile[3 * _TILE + i] += m3 * v
-                    tile[4 * _TILE + i] += m4 * v
-                    tile[5 * _TILE + i] += m5 * v
-                    tile[6 * _TILE + i] += m6 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+            tile[2 * _TILE + i] = -o2
+            tile[3 * _TILE + i] = -o3
+            tile[4 * _TILE + i] = -o4
+            tile[5 * _TILE + i] = -o5
+            tile[6 * _TILE + i] = -o6
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            m5_0 = mt[5, c + 0]
+            m6_0 = mt[6, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            m2_1 = mt[2, c + 1]
+            m3_1 = mt[3, c + 1]
+            m4_1 = mt[4, c + 1]
+            m5_1 = mt[5, c + 1]
+            m6_1 = mt[6, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            m2_2 = mt[2, c + 2]
+            m3_2 = mt[3, c + 2]
+            m4_2 = mt[4, c + 2]
+            m5_2 = mt[5, c + 2]
+            m6_2 = mt[6, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            m2_3 = mt[2, c + 3]
+            m3_3 = mt[3, c + 3]
+            m4_3 = mt[4, c + 3]
+            m5_3 = mt[5, c + 3]
+            m6_3 = mt[6, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+                tile[2 * _TILE + i] += m2_0 * v0 + m2_1 * v1 + m2_2 * v2 + m2_3 * v3
+                tile[3 * _TILE + i] += m3_0 * v0 + m3_1 * v1 + m3_2 * v2 + m3_3 * v3
+                tile[4 * _TILE + i] += m4_0 * v0 + m4_1 * v1 + m4_2 * v2 + m4_3 * v3
+                tile[5 * _TILE + i] += m5_0 * v0 + m5_1 * v1 + m5_2 * v2 + m5_3 * v3
+                tile[6 * _TILE + i] += m6_0 * v0 + m6_1 * v1 + m6_2 * v2 + m6_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            m5_0 = mt[5, c + 0]
+            m6_0 = mt[6, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+                tile[2 * _TILE + i] += m2_0 * v0
+                tile[3 * _TILE + i] += m3_0 * v0
+                tile[4 * _TILE + i] += m4_0 * v0
+                tile[5 * _TILE + i] += m5_0 * v0
+                tile[6 * _TILE + i] += m6_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
@@ -1283,38 +1493,88 @@ def unmix_k8(y, mt, offset, gram, inverses, order, constrained, out, start, stop
     f7_7 = inverses[255, 7, 7]
     for t0 in range(start, stop, _TILE):
         n = min(_TILE, stop - t0)
-        for c in range(n_channels):
-            m0 = mt[0, c]
-            m1 = mt[1, c]
-            m2 = mt[2, c]
-            m3 = mt[3, c]
-            m4 = mt[4, c]
-            m5 = mt[5, c]
-            m6 = mt[6, c]
-            m7 = mt[7, c]
-            row = y[c, t0:t0 + n]
-            if c == 0:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] = m0 * v - o0
-                    tile[1 * _TILE + i] = m1 * v - o1
-                    tile[2 * _TILE + i] = m2 * v - o2
-                    tile[3 * _TILE + i] = m3 * v - o3
-                    tile[4 * _TILE + i] = m4 * v - o4
-                    tile[5 * _TILE + i] = m5 * v - o5
-                    tile[6 * _TILE + i] = m6 * v - o6
-                    tile[7 * _TILE + i] = m7 * v - o7
-            else:
-                for i in range(n):
-                    v = np.float64(row[i])
-                    tile[0 * _TILE + i] += m0 * v
-                    tile[1 * _TILE + i] += m1 * v
-                    tile[2 * _TILE + i] += m2 * v
-                    tile[3 * _TILE + i] += m3 * v
-                    tile[4 * _TILE + i] += m4 * v
-                    tile[5 * _TILE + i] += m5 * v
-                    tile[6 * _TILE + i] += m6 * v
-                    tile[7 * _TILE + i] += m7 * v
+        for i in range(n):
+            tile[0 * _TILE + i] = -o0
+            tile[1 * _TILE + i] = -o1
+            tile[2 * _TILE + i] = -o2
+            tile[3 * _TILE + i] = -o3
+            tile[4 * _TILE + i] = -o4
+            tile[5 * _TILE + i] = -o5
+            tile[6 * _TILE + i] = -o6
+            tile[7 * _TILE + i] = -o7
+        c = 0
+        while c + 4 <= n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            m5_0 = mt[5, c + 0]
+            m6_0 = mt[6, c + 0]
+            m7_0 = mt[7, c + 0]
+            row1 = y[c + 1, t0:t0 + n]
+            m0_1 = mt[0, c + 1]
+            m1_1 = mt[1, c + 1]
+            m2_1 = mt[2, c + 1]
+            m3_1 = mt[3, c + 1]
+            m4_1 = mt[4, c + 1]
+            m5_1 = mt[5, c + 1]
+            m6_1 = mt[6, c + 1]
+            m7_1 = mt[7, c + 1]
+            row2 = y[c + 2, t0:t0 + n]
+            m0_2 = mt[0, c + 2]
+            m1_2 = mt[1, c + 2]
+            m2_2 = mt[2, c + 2]
+            m3_2 = mt[3, c + 2]
+            m4_2 = mt[4, c + 2]
+            m5_2 = mt[5, c + 2]
+            m6_2 = mt[6, c + 2]
+            m7_2 = mt[7, c + 2]
+            row3 = y[c + 3, t0:t0 + n]
+            m0_3 = mt[0, c + 3]
+            m1_3 = mt[1, c + 3]
+            m2_3 = mt[2, c + 3]
+            m3_3 = mt[3, c + 3]
+            m4_3 = mt[4, c + 3]
+            m5_3 = mt[5, c + 3]
+            m6_3 = mt[6, c + 3]
+            m7_3 = mt[7, c + 3]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                v1 = np.float64(row1[i])
+                v2 = np.float64(row2[i])
+                v3 = np.float64(row3[i])
+                tile[0 * _TILE + i] += m0_0 * v0 + m0_1 * v1 + m0_2 * v2 + m0_3 * v3
+                tile[1 * _TILE + i] += m1_0 * v0 + m1_1 * v1 + m1_2 * v2 + m1_3 * v3
+                tile[2 * _TILE + i] += m2_0 * v0 + m2_1 * v1 + m2_2 * v2 + m2_3 * v3
+                tile[3 * _TILE + i] += m3_0 * v0 + m3_1 * v1 + m3_2 * v2 + m3_3 * v3
+                tile[4 * _TILE + i] += m4_0 * v0 + m4_1 * v1 + m4_2 * v2 + m4_3 * v3
+                tile[5 * _TILE + i] += m5_0 * v0 + m5_1 * v1 + m5_2 * v2 + m5_3 * v3
+                tile[6 * _TILE + i] += m6_0 * v0 + m6_1 * v1 + m6_2 * v2 + m6_3 * v3
+                tile[7 * _TILE + i] += m7_0 * v0 + m7_1 * v1 + m7_2 * v2 + m7_3 * v3
+            c += 4
+        while c < n_channels:
+            row0 = y[c + 0, t0:t0 + n]
+            m0_0 = mt[0, c + 0]
+            m1_0 = mt[1, c + 0]
+            m2_0 = mt[2, c + 0]
+            m3_0 = mt[3, c + 0]
+            m4_0 = mt[4, c + 0]
+            m5_0 = mt[5, c + 0]
+            m6_0 = mt[6, c + 0]
+            m7_0 = mt[7, c + 0]
+            for i in range(n):
+                v0 = np.float64(row0[i])
+                tile[0 * _TILE + i] += m0_0 * v0
+                tile[1 * _TILE + i] += m1_0 * v0
+                tile[2 * _TILE + i] += m2_0 * v0
+                tile[3 * _TILE + i] += m3_0 * v0
+                tile[4 * _TILE + i] += m4_0 * v0
+                tile[5 * _TILE + i] += m5_0 * v0
+                tile[6 * _TILE + i] += m6_0 * v0
+                tile[7 * _TILE + i] += m7_0 * v0
+            c += 1
         n_unresolved = 0
         if not constrained:
             for i in range(n):
