@@ -13,6 +13,7 @@ import tifffile
 
 from conftest import fingerprint
 from unmix.cli import main
+from unmix.matrix import BleedThroughMatrix
 
 
 @pytest.fixture
@@ -41,9 +42,56 @@ def files(tmp_path, demo):
     tifffile.imwrite(tmp_path / "saturated.ome.tif", saturated, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
     tifffile.imwrite(tmp_path / "four_d.tif", np.stack([cob, cob]), photometric="minisblack")  # shape only, no axes
+    _descriptions(tmp_path)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
     return paths
+
+
+DESCRIPTION = """[description]
+format = "unmix-description"
+version = 1
+
+[[label]]
+name = "A"
+excitation = { peak_nm = 490, fwhm_nm = 40 }
+emission = { peak_nm = 520, fwhm_nm = 40 }
+extinction = 70000
+quantum_yield = 0.8
+
+[[channel]]
+name = "g"
+source = { laser_nm = 488.0, power_mw = 3.0 }
+emission_filter = { band = "525/50" }
+"""
+
+
+def _descriptions(folder: Path) -> None:
+    """A valid description and broken variants, with CSV spectra (invented set-up)."""
+    (folder / "good_desc.toml").write_text(DESCRIPTION)
+    variants = {
+        "unknown_key": DESCRIPTION.replace("quantum_yield = 0.8", "quantum_yield = 0.8\nbrightness = 3"),
+        "zero_width": DESCRIPTION.replace('"525/50"', '"525/0"'),
+        "far_filter": DESCRIPTION.replace('"525/50"', '"1525/50"'),
+        "nm_in_metres": DESCRIPTION.replace("laser_nm = 488.0", "laser_nm = 4.88e-7"),
+        "bad_primary": DESCRIPTION.replace("quantum_yield = 0.8", 'quantum_yield = 0.8\nprimary = "red"'),
+        "csv_text": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "text.csv" }'),
+        "csv_decreasing": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "decreasing.csv" }'),
+        "csv_negative": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "negative.csv" }'),
+        "csv_single": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "single.csv" }'),
+        "invisible": DESCRIPTION.replace("peak_nm = 520, fwhm_nm = 40", "peak_nm = 800, fwhm_nm = 20").replace(
+            "peak_nm = 490", "peak_nm = 760") + DESCRIPTION[DESCRIPTION.index("[[label]]"):DESCRIPTION.index(
+                "[[channel]]")].replace('"A"', '"B"'),
+        "bad_unit": DESCRIPTION.replace('{ peak_nm = 520, fwhm_nm = 40 }', '{ csv = "good.csv", unit = "lumens" }'),
+        "not_toml": "[description\nformat = ",
+    }
+    for name, text in variants.items():
+        (folder / f"{name}.toml").write_text(text)
+    (folder / "text.csv").write_text("500,0.1\n510,about half\n")
+    (folder / "decreasing.csv").write_text("520,0.1\n510,0.2\n")
+    (folder / "negative.csv").write_text("500,0.1\n510,-0.2\n")
+    (folder / "single.csv").write_text("500,0.1\n")
+    (folder / "good.csv").write_text("500,0.1\n600,0.2\n")
 
 
 def _measure(*controls, extra=()):
@@ -85,7 +133,41 @@ BAD_INPUT = {
     "unknown option": (lambda f: _measure(f"A={f['cob']}", extra=["--frobnicate", "-o", f["out"]]), "--frobnicate"),
     "bad bootstrap": (lambda f: _measure(f"A={f['cob']}", extra=["--bootstrap", "3", "-o", f["out"]]), "n_boot"),
     "unknown command": (lambda f: ["transmogrify"], "transmogrify"),
+    "description unknown key": (lambda f: _predict(f, "unknown_key"), "brightness"),
+    "filter width zero": (lambda f: _predict(f, "zero_width"), "width"),
+    "filter outside 200-1200 nm": (lambda f: _predict(f, "far_filter"), "200-1200"),
+    "wavelength in wrong unit": (lambda f: _predict(f, "nm_in_metres"), "laser_nm"),
+    "description unknown primary": (lambda f: _predict(f, "bad_primary"), "'red'"),
+    "csv spectrum with text": (lambda f: _predict(f, "csv_text"), "text.csv"),
+    "csv spectrum decreasing": (lambda f: _predict(f, "csv_decreasing"), "decreasing.csv"),
+    "csv spectrum negative": (lambda f: _predict(f, "csv_negative"), "negative.csv"),
+    "csv spectrum single point": (lambda f: _predict(f, "csv_single"), "single.csv"),
+    "label invisible everywhere": (lambda f: _predict(f, "invisible"), "'A'"),
+    "unknown spectrum unit": (lambda f: _predict(f, "bad_unit"), "lumens"),
+    "description not toml": (lambda f: _predict(f, "not_toml"), "not_toml.toml"),
+    "description missing": (lambda f: ["predict", "--config", "/no/such.toml", "-o", f["out"]], "/no/such.toml"),
+    "predict output is the description": (lambda f: ["predict", "--config", f["good_desc"], "-o", f["good_desc"]],
+                                          "also an input"),
+    "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
+    "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
+                             "notes.tif"),
 }
+
+
+def _predict(files, variant):
+    return ["predict", "--config", Path(files["out"]).parent / f"{variant}.toml", "-o", files["out"]]
+
+
+def _compare_pair(files):
+    folder = Path(files["out"]).parent
+    measured = BleedThroughMatrix(kind="measured", channels=("g", "o"), labels=("A",), primary={"A": "g"},
+                                  matrix=np.array([[1.0], [0.2]]), ci95_low=np.array([[1.0], [0.1]]),
+                                  ci95_high=np.array([[1.0], [0.3]]), background=np.zeros(2), background_source="dark")
+    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "r"), labels=("A",), primary={"A": "g"},
+                                   matrix=np.array([[1.0], [0.2]]))
+    measured.save(folder / "measured.json")
+    predicted.save(folder / "predicted.json")
+    return ["compare", folder / "measured.json", folder / "predicted.json", "-o", folder / "cmp"]
 
 
 @pytest.mark.parametrize("case", list(BAD_INPUT))
@@ -140,3 +222,33 @@ def test_real_process_exit_codes(files):
     assert missing.stderr.strip() == "error: /nope.tif: no such file; check the path"
     version = subprocess.run([sys.executable, "-m", "unmix.cli", "--version"], capture_output=True, text=True)
     assert version.returncode == 0 and version.stdout.startswith("unmix ")
+
+
+def test_predict_compare_and_plan_from_the_command_line(tmp_path, capsys):
+    # The shipped demo description, predicted, compared with itself as a "measured" matrix.
+    from unmix.shipped import shipped_dir
+
+    description = shipped_dir("configs") / "demo_optics.toml"
+    predicted = tmp_path / "predicted.json"
+    assert main(["predict", "--config", str(description), "-o", str(predicted), "--plot",
+                 str(tmp_path / "spectra.png")]) == 0
+    out = capsys.readouterr().out
+    assert "cross-excitation factor" in out and "Relative brightness" in out
+    matrix = json.loads(predicted.read_text())
+    assert matrix["kind"] == "predicted" and matrix["ci95_low"] is None and "emission_factor" in matrix["qc"]
+    values = np.array(matrix["matrix"])
+    measured = BleedThroughMatrix(kind="measured", channels=tuple(matrix["channels"]), labels=tuple(matrix["labels"]),
+                                  primary=matrix["primary"], matrix=values, ci95_low=values * 0.9,
+                                  ci95_high=values * 1.1, background=np.zeros(len(values)), background_source="dark")
+    measured.save(tmp_path / "measured.json")
+    assert main(["compare", str(tmp_path / "measured.json"), str(predicted), "-o", str(tmp_path / "cmp"),
+                 "--config", str(description)]) == 0
+    result = json.loads((tmp_path / "cmp" / "compare.json").read_text())
+    assert len(result["coefficients"]) == 6
+    assert {row["verdict"] for row in result["coefficients"]} <= {"agrees", "below-detection"}
+    for name in ("compare.csv", "compare-matrices.png", "compare-scatter.png", "compare-spectra.png"):
+        assert (tmp_path / "cmp" / name).stat().st_size > 0
+    assert (tmp_path / "spectra.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    capsys.readouterr()
+    assert main(["plan", str(description)]) == 0
+    assert "sequential" in capsys.readouterr().out

@@ -28,8 +28,8 @@ def matrix_summary(matrix: BleedThroughMatrix) -> str:
             else:
                 cells.append(f"{value:.4f}")
         rows.append([channel, *cells])
-    parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel,"
-             + (" 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
+    parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel"
+             + (", 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
     per_label = matrix.qc.get("labels", {})
     if per_label:
         rows = [["label", "primary", "fields", "usable pixels", "saturated in primary"]]
