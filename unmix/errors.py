@@ -13,3 +13,20 @@ class InputError(ValueError):
 
 class InputWarning(UserWarning):
     """Something in the input deserves attention but does not stop the run."""
+
+
+def read_user_text(path, what: str, fix: str, encoding: str = "utf-8") -> str:
+    """The text of a user's file; InputError naming it when it is missing or unreadable.
+
+    `what` names the kind of file ("matrix file"), `fix` says what to do when
+    it cannot be read as text.
+    """
+    from pathlib import Path
+
+    path = Path(path)
+    try:
+        return path.read_text(encoding=encoding)
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such {what}; check the path") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"{path}: cannot read the {what} ({type(exc).__name__}); {fix}") from None

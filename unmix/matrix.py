@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from .atomic import write_text_atomic
-from .errors import InputError
+from .errors import InputError, read_user_text
 
 FORMAT = "unmix-matrix"
 VERSION = 1
@@ -275,12 +275,7 @@ def load_matrix(path) -> BleedThroughMatrix:
         Naming the file and the first thing that is wrong with it.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such matrix file; check the path") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path}: cannot read the matrix file ({exc.__class__.__name__}); check the file") from None
+    text = read_user_text(path, "matrix file", "check the file")
     try:
         data = json.loads(text, parse_constant=_reject_constant)
     except (json.JSONDecodeError, ValueError, RecursionError) as exc:

@@ -45,7 +45,7 @@ from typing import Callable
 import numpy as np
 
 from . import spectra
-from .errors import InputError
+from .errors import InputError, read_user_text
 
 FORMAT = "unmix-description"
 VERSION = 1
@@ -167,12 +167,7 @@ def load_description(path) -> Description:
 # --- parsing helpers --------------------------------------------------------------
 
 def _read_toml(path: Path) -> dict:
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such description file; check the path") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path}: cannot read the description ({type(exc).__name__}); give a UTF-8 TOML file") from None
+    text = read_user_text(path, "description file", "give a UTF-8 TOML file")
     try:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -270,17 +265,24 @@ class _Parser:
     def _csv(self, table: dict, origin: Path, where: str, transmission: bool) -> Curve:
         spectrum = spectra.read_spectrum_csv(origin.parent / str(table["csv"]), transmission=transmission)
         unit = table.get("unit", "relative")
-        function = spectrum.on
-        if unit not in ("relative", "photons", "qe", "transmission"):
-            spectra.convert_unit(np.ones(1), np.ones(1) * 500.0, unit, where)  # names an unknown unit
-            function = _converted(spectrum.on, unit, where)
+        if unit not in spectra.UNITS:
+            raise InputError(f"{where}: unknown unit {unit!r}; use one of {', '.join(spectra.UNITS)}")
+        function = spectrum.on if unit in spectra.NATIVE_UNITS else _converted(spectrum.on, unit, where)
         return Curve(function, str(origin.parent / str(table["csv"])))
+
+    def _named(self, table: dict, index: int, kind: str, allowed: set) -> tuple[str, str]:
+        """Where a [[label]] or [[channel]] table is (for messages), and its checked name."""
+        where = f"{self.path}: [[{kind}]] {table.get('name', index + 1)!r}"
+        _check_keys(table, allowed, where)
+        name = table.get("name")
+        if not isinstance(name, str) or not name.strip():
+            raise InputError(f"{where}: give the {kind} a name" + (" (the image channel name)" if kind == "channel" else ""))
+        return where, name
 
     # --- labels
 
     def band(self, value, where: str, toward: str) -> Curve:
-        table, origin = self._resolve(value, "label_shapes", where) if isinstance(value, str) else (
-            _table(value, where), self.path)
+        table, origin = _table(value, where), self.path
         _check_keys(table, _BAND_KEYS, where)
         if "csv" in table:
             return self._csv(table, origin, where, transmission=False)
@@ -298,11 +300,7 @@ class _Parser:
         return Curve(band, f"log-normal {peak:g}/{fwhm:g} nm")
 
     def label(self, table: dict, index: int) -> LabelOptics:
-        where = f"{self.path}: [[label]] {table.get('name', index + 1)!r}"
-        _check_keys(table, _LABEL_KEYS, where)
-        name = table.get("name")
-        if not isinstance(name, str) or not name.strip():
-            raise InputError(f"{where}: give the label a name")
+        where, name = self._named(table, index, "label", _LABEL_KEYS)
         shape = {}
         if "shape" in table:
             shape, _ = self._resolve(str(table["shape"]), "label_shapes", where)
@@ -325,10 +323,10 @@ class _Parser:
 
     # --- channels
 
-    def filter(self, value, where: str, kind: str = "filters") -> Curve | None:
+    def filter(self, value, where: str) -> Curve | None:
         if value is None:
             return None
-        table, origin = self._resolve(value, kind if kind == "filters" else "filters", where)
+        table, origin = self._resolve(value, "filters", where)
         _check_keys(table, _FILTER_KEYS, where)
         if "csv" in table:
             return self._csv(table, origin, where, transmission=True)
@@ -403,11 +401,7 @@ class _Parser:
         return Curve(partial(spectra.example_detector_qe, model=model), f"example {model}")
 
     def channel(self, table: dict, index: int) -> ChannelOptics:
-        where = f"{self.path}: [[channel]] {table.get('name', index + 1)!r}"
-        _check_keys(table, _CHANNEL_KEYS, where)
-        name = table.get("name")
-        if not isinstance(name, str) or not name.strip():
-            raise InputError(f"{where}: give the channel a name (the image channel name)")
+        where, name = self._named(table, index, "channel", _CHANNEL_KEYS)
         if "source" not in table:
             raise InputError(f"{where}: 'source' is missing; give e.g. {{ laser_nm = 488.0, power_mw = 3.0 }}")
         track = table.get("track")

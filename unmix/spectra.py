@@ -46,12 +46,15 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
+from .errors import InputError, read_user_text
 
 # Wavelengths a description may use (nm): the span of fluorescence microscopy
 # optics, ultraviolet to near infrared (common practice).
 MIN_NM, MAX_NM = 200.0, 1200.0
 DEFAULT_STEP_NM = 0.5
+# Units a curve may be stated in; the first four are the description's own.
+NATIVE_UNITS = ("relative", "photons", "qe", "transmission")
+UNITS = NATIVE_UNITS + ("energy", "radiant_sensitivity")
 # Mercury arc lines, nm (NIST Atomic Spectra Database). Relative intensities of
 # a typical short-arc lamp: (from memory, approximate).
 MERCURY_LINES_NM = (365.0, 404.7, 435.8, 546.1, 577.0, 579.1)
@@ -114,12 +117,7 @@ def read_spectrum_csv(path, *, transmission: bool = False) -> Spectrum:
         Naming the file (and line) and what to fix.
     """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such spectrum file; check the path in the description") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"{path}: cannot read the spectrum ({type(exc).__name__}); give a two-column text CSV") from None
+    text = read_user_text(path, "spectrum file", "give a two-column text CSV", encoding="utf-8-sig")
     rows = []
     for number, line in enumerate(text.splitlines(), start=1):
         line = line.strip()
@@ -186,7 +184,7 @@ def convert_unit(values: np.ndarray, nm: np.ndarray, unit: str, where: str) -> n
     """
     from scipy import constants
 
-    if unit in ("photons", "qe", "transmission", "relative"):
+    if unit in NATIVE_UNITS:
         return values
     metres = nm * 1e-9
     if unit == "energy":
