@@ -10,7 +10,6 @@ loop below is a plain vectorisable reduction or comparison in the pixel type
 
 from __future__ import annotations
 
-import numpy as np
 from numba import njit
 
 

@@ -132,7 +132,8 @@ def _kernel(k: int) -> str:
     unconstrained("                ")
     add("                todo = " + " | ".join(f"(a{j} < 0.0)" for j in labels))
     if enumerate_supports:
-        add("                tol_a = _RELATIVE_TOLERANCE * max(" + ", ".join(f"abs(a{j})" for j in labels) + ", 0.0)")
+        if k > 1:  # with one label the only smaller support is the empty one: no abundance to check
+            add("                tol_a = _RELATIVE_TOLERANCE * max(" + ", ".join(f"abs(a{j})" for j in labels) + ", 0.0)")
         add("                tol_g = _RELATIVE_TOLERANCE * max(" + ", ".join(f"abs(w{j})" for j in labels) + ", 0.0)")
         for mask in _supports(k):
             members = _members(mask, k)

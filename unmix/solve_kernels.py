@@ -6,7 +6,6 @@ they do not resolve themselves.
 
 from __future__ import annotations
 
-import numpy as np
 from numba import njit
 
 _RELATIVE_TOLERANCE = 1e-9

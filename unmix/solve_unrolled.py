@@ -65,7 +65,6 @@ def unmix_k1(y, mt, offset, gram, inverses, order, constrained, out, start, stop
                 poison = w0 * 0.0
                 a0 = f0_0 * w0
                 todo = (a0 < 0.0)
-                tol_a = _RELATIVE_TOLERANCE * max(abs(a0), 0.0)
                 tol_g = _RELATIVE_TOLERANCE * max(abs(w0), 0.0)
                 # support {}
                 ok = todo & (-w0 >= -tol_g)

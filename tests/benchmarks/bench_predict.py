@@ -11,7 +11,6 @@ the least work any prediction must do.
 from __future__ import annotations
 
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
