@@ -58,6 +58,13 @@ def test_run_demo_writes_results(tmp_path, capsys):
     assert result["unmixed"].exists()
     assert all(error < 40 for error in result["rms_error"].values())  # shot noise of ~1000 e- peaks
     assert "Bleed-through matrix" in capsys.readouterr().out
+    # The shipped demo's orange600 cube holds another emission filter than described:
+    # measured versus predicted points at that channel and only its row disagrees.
+    assert result["likely_channel"] == "orange600"
+    disagreeing = {key for key, verdict in result["verdicts"].items() if verdict in ("higher", "lower")}
+    assert disagreeing and all(channel == "orange600" for channel, _ in disagreeing)
+    assert result["verdicts"][("green525", "Cobaltin")] == "agrees"
+    assert (result["compare"] / "compare.json").exists()
 
 
 @pytest.mark.slow

@@ -36,9 +36,10 @@ SCENARIO_FILE = "demo_scenario.toml"
 
 @dataclass(frozen=True)
 class Scenario:
-    """The parsed demo scenario."""
+    """The parsed demo scenario; `folder` is where its files (the optics description) are."""
 
     raw: dict
+    folder: Path
 
     @property
     def channels(self) -> list[str]:
@@ -48,9 +49,29 @@ class Scenario:
     def labels(self) -> list[str]:
         return [lab["name"] for lab in self.raw["label"]]
 
+    def described_optics(self):
+        """The instrument as its users describe it (a :class:`unmix.optics.Description`)."""
+        from .optics import load_description
+
+        return load_description(self.folder / self.raw["optics"]["description"])
+
+    def built_optics(self):
+        """The instrument as built: the description with the parts that really differ."""
+        from .optics import with_channel_parts
+
+        description = self.described_optics()
+        for channel, parts in self.raw["optics"].get("as_built", {}).items():
+            description = with_channel_parts(description, channel, parts, f"{SCENARIO_FILE} [optics] as_built")
+        return description
+
     def true_matrix(self) -> np.ndarray:
-        """The true bleed-through matrix (channels x labels)."""
-        return np.array([[lab["bleed_through"][c] for lab in self.raw["label"]] for c in self.channels])
+        """The true bleed-through matrix (channels x labels): predicted for the instrument as built."""
+        from .predict import predict
+
+        matrix = predict(self.built_optics()).matrix
+        rows = [matrix.channels.index(c) for c in self.channels]
+        columns = [matrix.labels.index(label) for label in self.labels]
+        return matrix.matrix[np.ix_(rows, columns)]
 
     def primary(self) -> dict:
         return {lab["name"]: lab["primary"] for lab in self.raw["label"]}
@@ -58,7 +79,7 @@ class Scenario:
 
 def load_scenario(path=None) -> Scenario:
     path = shipped_dir("configs") / SCENARIO_FILE if path is None else Path(path)
-    return Scenario(tomllib.loads(path.read_text(encoding="utf-8")))
+    return Scenario(tomllib.loads(path.read_text(encoding="utf-8")), path.parent)
 
 
 def demo_stacks_dir() -> Path:
@@ -273,9 +294,38 @@ def run_demo(outdir, out=None) -> dict:
     for k, label in enumerate(matrix.labels):
         errors[label] = float(np.sqrt(np.mean((unmixed[k] - true_abundances[k]) ** 2)))
         print(f"  {label}: {errors[label]:.1f} (peak signal {true_abundances[k].max():.0f})", file=out)
-    print(f"\nMatrix:   {matrix_path}\nTable:    {csv_path}\nUnmixed:  {result.output}", file=out)
+    comparison, compare_dir = _measured_versus_predicted(matrix, outdir, out)
+    print(f"\nMatrix:    {matrix_path}\nTable:     {csv_path}\nUnmixed:   {result.output}\n"
+          f"Predicted: {outdir / 'demo_predicted.json'}\nCompared:  {compare_dir}", file=out)
     return {"matrix": matrix_path, "csv": csv_path, "unmixed": Path(result.output),
-            "truth_inside_ci": int(inside.sum()), "coefficients": int(inside.size), "rms_error": errors}
+            "truth_inside_ci": int(inside.sum()), "coefficients": int(inside.size), "rms_error": errors,
+            "compare": compare_dir, "likely_channel": comparison.likely_channel,
+            "verdicts": {(r["channel"], r["label"]): r["verdict"] for r in comparison.coefficients}}
+
+
+def _measured_versus_predicted(matrix, outdir: Path, out):
+    """Predict the matrix from the instrument's description and compare the measured one with it."""
+    from .compare import aligned_prediction, compare, write_comparison
+    from .plots import comparison_figure, matrices_figure, save_png, spectra_figure
+    from .predict import predict
+
+    scenario = load_scenario()
+    description = scenario.described_optics()
+    predicted = predict(description).matrix
+    predicted.save(outdir / "demo_predicted.json")
+    comparison = compare(matrix, predicted)
+    compare_dir = outdir / "compare"
+    write_comparison(comparison, compare_dir)
+    save_png(matrices_figure(matrix, aligned_prediction(matrix, predicted, "demo")), compare_dir / "compare-matrices.png")
+    save_png(comparison_figure(comparison), compare_dir / "compare-scatter.png")
+    save_png(spectra_figure(description), compare_dir / "compare-spectra.png")
+    print("\nMeasured versus predicted from the instrument's description:", file=out)
+    for row in comparison.coefficients:
+        print(f"  {row['label']} in {row['channel']}: measured {row['measured']:.4f} "
+              f"[{row['ci95'][0]:.4f}, {row['ci95'][1]:.4f}], predicted {row['predicted']:.4f}: {row['verdict']}",
+              file=out)
+    print(f"  {comparison.summary}", file=out)
+    return comparison, compare_dir
 
 
 def main(argv=None) -> int:

@@ -164,6 +164,27 @@ def load_description(path) -> Description:
     return Description(labels, channels, acquisition, grid, str(path), str(head.get("name", "")))
 
 
+def with_channel_parts(description: Description, channel: str, parts: dict, where: str) -> Description:
+    """The description with some parts of one channel replaced, each given as an inline table
+    as in a description file (e.g. ``{"emission_filter": {"band": "580/70"}}``): a set-up as
+    built rather than as described."""
+    from dataclasses import replace
+
+    if channel not in description.channel_names:
+        raise InputError(f"{where}: no channel {channel!r} in {description.path}")
+    parser = _Parser(Path(description.path), {kind: {} for kind in LIBRARIES})
+    builders = {"excitation_filter": parser.filter, "dichroic": parser.filter, "emission_filter": parser.filter,
+                "detector": parser.detector, "source": parser.source}
+    unknown = sorted(set(parts) - set(builders))
+    if unknown:
+        raise InputError(f"{where}: cannot replace {unknown} of a channel; give {', '.join(builders)}")
+    index = description.channel_names.index(channel)
+    changed = replace(description.channels[index], **{part: builders[part](table, f"{where} {part}")
+                                                      for part, table in parts.items()})
+    channels = description.channels[:index] + (changed,) + description.channels[index + 1:]
+    return replace(description, channels=channels)
+
+
 # --- parsing helpers --------------------------------------------------------------
 
 def _read_toml(path: Path) -> dict:
