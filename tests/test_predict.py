@@ -170,19 +170,18 @@ def _measured_from(prediction, relative_ci=0.05):
                               background=np.zeros(len(m.channels)), background_source="dark")
 
 
-def test_compare_agrees_with_itself_and_points_at_a_changed_filter(tmp_path):
+def test_compare_agrees_with_itself_and_points_at_a_changed_filter():
     # Self-consistency (invented set-up): the "measured" matrix comes from the same optics
     # with the orange channel's real emission filter shifted to the red of its nominal one.
-    demo = Path(__file__).parent.parent / "configs" / "demo_optics.toml"
-    nominal = predict(load_description(demo))
+    from unmix.optics import with_channel_parts
+
+    demo = load_description(Path(__file__).parent.parent / "configs" / "demo_optics.toml")
+    nominal = predict(demo)
     same = compare(_measured_from(nominal), nominal.matrix)
     assert {row["verdict"] for row in same.coefficients} <= {"agrees", "below-detection"}
     assert same.likely_channel is None
-    built = tmp_path / "built.toml"
-    built.write_text(demo.read_text().replace('band = "600/50"', 'band = "630/50"').replace(
-        'include = ["label_shapes.toml"]', f'include = ["{demo.parent / "label_shapes.toml"}"]'))
-    measured = _measured_from(predict(load_description(built)))
-    result = compare(measured, nominal.matrix)
+    built = with_channel_parts(demo, "orange600", {"emission_filter": {"band": "640/50"}}, "test")
+    result = compare(_measured_from(predict(built)), nominal.matrix)
     disagreeing = {(r["channel"], r["label"]) for r in result.coefficients if r["verdict"] in ("higher", "lower")}
     assert disagreeing and all(c == "orange600" or label == "Emberin" for c, label in disagreeing)
     assert result.likely_channel == "orange600" and "orange600" in result.summary
