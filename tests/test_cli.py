@@ -84,6 +84,8 @@ def _descriptions(folder: Path) -> None:
                 "[[channel]]")].replace('"A"', '"B"'),
         "bad_unit": DESCRIPTION.replace('{ peak_nm = 520, fwhm_nm = 40 }', '{ csv = "good.csv", unit = "lumens" }'),
         "not_toml": "[description\nformat = ",
+        "unknown_filter_name": DESCRIPTION.replace('{ band = "525/50" }', '"em525"'),
+        "unknown_shape": DESCRIPTION.replace("quantum_yield = 0.8", 'quantum_yield = 0.8\nshape = "generic-teal"'),
     }
     for name, text in variants.items():
         (folder / f"{name}.toml").write_text(text)
@@ -148,7 +150,10 @@ BAD_INPUT = {
     "description missing": (lambda f: ["predict", "--config", "/no/such.toml", "-o", f["out"]], "/no/such.toml"),
     "predict output is the description": (lambda f: ["predict", "--config", f["good_desc"], "-o", f["good_desc"]],
                                           "also an input"),
+    "description unknown filter name": (lambda f: _predict(f, "unknown_filter_name"), "em525"),
+    "description unknown label shape": (lambda f: _predict(f, "unknown_shape"), "generic-teal"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
+    "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
                              "notes.tif"),
 }
@@ -158,12 +163,13 @@ def _predict(files, variant):
     return ["predict", "--config", Path(files["out"]).parent / f"{variant}.toml", "-o", files["out"]]
 
 
-def _compare_pair(files):
+def _compare_pair(files, labels=False):
     folder = Path(files["out"]).parent
     measured = BleedThroughMatrix(kind="measured", channels=("g", "o"), labels=("A",), primary={"A": "g"},
                                   matrix=np.array([[1.0], [0.2]]), ci95_low=np.array([[1.0], [0.1]]),
                                   ci95_high=np.array([[1.0], [0.3]]), background=np.zeros(2), background_source="dark")
-    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "r"), labels=("A",), primary={"A": "g"},
+    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels else ("g", "r"),
+                                   labels=("Z",) if labels else ("A",), primary={"Z" if labels else "A": "g"},
                                    matrix=np.array([[1.0], [0.2]]))
     measured.save(folder / "measured.json")
     predicted.save(folder / "predicted.json")
