@@ -43,6 +43,7 @@ def files(tmp_path, demo):
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
     tifffile.imwrite(tmp_path / "four_d.tif", np.stack([cob, cob]), photometric="minisblack")  # shape only, no axes
     _descriptions(tmp_path)
+    _coloc_files(tmp_path, cob.shape[1:])
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
     return paths
@@ -64,6 +65,25 @@ name = "g"
 source = { laser_nm = 488.0, power_mw = 3.0 }
 emission_filter = { band = "525/50" }
 """
+
+
+def _coloc_files(folder: Path, shape) -> None:
+    """A matrix of the demo's channels and labels, and masks of the wrong size or empty."""
+    values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
+    BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
+                       labels=("Cobaltin", "Fernlight", "Emberin"),
+                       primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                       matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.full(3, 100.0),
+                       background_source="dark", saturation=np.full(3, 4095.0)).save(folder / "coloc_matrix.json")
+    tifffile.imwrite(folder / "small_mask.tif", np.ones((5, 5), np.uint8))
+    tifffile.imwrite(folder / "empty_mask.tif", np.zeros(shape, np.uint8))
+    tifffile.imwrite(folder / "stack.ome.tif", np.zeros((2, 3, 8, 8), np.uint16), ome=True,
+                     metadata={"axes": "ZCYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+
+
+def _coloc(files, *extra, image="cob"):
+    folder = Path(files["out"]).parent
+    return ["coloc", files[image], "--matrix", folder / "coloc_matrix.json", *extra]
 
 
 def _descriptions(folder: Path) -> None:
@@ -152,6 +172,18 @@ BAD_INPUT = {
                                           "also an input"),
     "description unknown filter name": (lambda f: _predict(f, "unknown_filter_name"), "em525"),
     "description unknown label shape": (lambda f: _predict(f, "unknown_shape"), "generic-teal"),
+    "coloc label not in matrix": (lambda f: _coloc(f, "--labels", "Cobaltin,Violetta"), "Violetta"),
+    "coloc malformed pair": (lambda f: _coloc(f, "--labels", "Cobaltin"), "A,B"),
+    "coloc mask of another size": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--mask", f["small_mask"]),
+                                   "small_mask"),
+    "coloc empty mask": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--mask", f["empty_mask"]),
+                         "empty_mask"),
+    "coloc stack not a plane": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="stack"), "one plane"),
+    "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="renamed"),
+                                   "renamed.ome.tif"),
+    "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--rounds", "5"), "--rounds"),
+    "coloc json is the input": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--json", f["cob"]),
+                                "also an input"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],

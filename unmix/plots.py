@@ -127,3 +127,43 @@ def comparison_figure(comparison):
     axis.legend(fontsize=8, loc="upper left")
     axis.set_title("Measured versus predicted bleed-through", fontsize=10)
     return figure
+
+
+def coloc_histograms(before_pixels, after_pixels, result):
+    """2-D intensity histograms of the pair before and after unmixing (log colour scale), with the
+    thresholds and the orthogonal regression line drawn; the verdict in the title."""
+    from matplotlib.colors import LogNorm
+
+    from .coloc import orthogonal_regression
+
+    plt = _pyplot()
+    figure, axes = plt.subplots(1, 2, figsize=(10.5, 4.8), layout="constrained")
+    a_label, b_label = result.pair
+    for axis, (a, b), coefficients, title in (
+            (axes[0], before_pixels, result.before, "before: primary channels, background subtracted"),
+            (axes[1], after_pixels, result.after, "after: unmixed abundances")):
+        a, b = np.asarray(a, dtype=float).ravel(), np.asarray(b, dtype=float).ravel()
+        keep = np.isfinite(a) & np.isfinite(b)
+        a, b = a[keep], b[keep]
+        if a.size == 0:
+            axis.set_title(f"{title}\n(no pixels)", fontsize=9)
+            continue
+        _, _, _, image = axis.hist2d(a, b, bins=128, norm=LogNorm(), cmap="magma")
+        figure.colorbar(image, ax=axis, label="pixels")
+        if coefficients.thresholds is not None:
+            t_a, t_b = coefficients.thresholds
+            axis.axvline(t_a, color="#56B4E9", lw=1, ls="--", label=f"threshold {a_label}")
+            axis.axhline(t_b, color="#56B4E9", lw=1, ls=":", label=f"threshold {b_label}")
+        if np.ptp(a) > 0 and np.ptp(b) > 0:
+            slope, intercept = orthogonal_regression(a, b)
+            x = np.array([a.min(), a.max()])
+            axis.plot(x, slope * x + intercept, color="white", lw=1.2, label="orthogonal regression")
+            axis.set_ylim(b.min(), b.max())
+        r = "undefined" if coefficients.pearson is None else f"{coefficients.pearson:.3f}"
+        p = "-" if coefficients.p_value is None else f"{coefficients.p_value:.3g}"
+        axis.set_title(f"{title}\nPearson r = {r}, p = {p}", fontsize=9)
+        axis.set_xlabel(a_label)
+        axis.set_ylabel(b_label)
+        axis.legend(fontsize=7, loc="upper left")
+    figure.suptitle(f"{a_label} and {b_label}: {result.verdict}", fontsize=11)
+    return figure
