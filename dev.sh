@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # Set up and run, on a fresh Debian machine with Python 3.11 (no GPU needed).
 #   ./dev.sh demo   install, then run the demo scenario end to end
-#   ./dev.sh test   install with the test extras, then run the whole test suite
+#   ./dev.sh test   install with the test extras (and Debian's chromium for the report's
+#                   browser test, when run as root), then run the whole test suite
 #   ./dev.sh bench  install, then run the benchmarks under tests/benchmarks/
 # The virtual environment lives in .venv (override with UNMIX_VENV).
 set -euo pipefail
@@ -39,6 +40,10 @@ case "$task" in
         ;;
     test)
         setup "[test]"
+        if ! command -v chromium >/dev/null 2>&1 && [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
+            # The report is checked in a real browser: Debian's headless Chromium.
+            apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null
+        fi
         shift
         set +e
         "$venv/bin/python" -m pytest "$@"

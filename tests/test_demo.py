@@ -65,6 +65,10 @@ def test_run_demo_writes_results(tmp_path, capsys):
     assert disagreeing and all(channel == "orange600" for channel, _ in disagreeing)
     assert result["verdicts"][("green525", "Cobaltin")] == "agrees"
     assert (result["compare"] / "compare.json").exists()
+    # The demo's pairs: the independent one is flagged, the overlapping one is not.
+    assert result["coloc"][("Fernlight", "Emberin")] == "bleed-through-only"
+    assert result["coloc"][("Cobaltin", "Emberin")] in ("persists", "inflated")
+    assert result["report"].exists()
 
 
 @pytest.mark.slow

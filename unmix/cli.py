@@ -378,7 +378,7 @@ def _coloc(args) -> int:
                 result = analyse_pair(raw, matrix, pair, unmixed=unmixed, mask=region, rounds=args.rounds,
                                       seed=args.seed, alpha=args.alpha, min_r=args.min_r, flat=flat,
                                       estimate_flat=args.flat == "estimate", simulations=0 if quick else SIMULATIONS)
-                results.append((path, object_id, result))
+                histogram = None
                 if args.histograms:
                     from .plots import coloc_histograms, save_png
                     from .verdict import pair_planes
@@ -389,12 +389,16 @@ def _coloc(args) -> int:
                     keep = np.ones(raw.shape[1:], bool) if region is None else region
                     stem = Path(path).name.split(".")[0] + f"_{pair[0]}-{pair[1]}" + (
                         f"_object{object_id}" if object_id is not None else "")
-                    save_png(coloc_histograms((before_a[keep], before_b[keep]), (after_a[keep], after_b[keep]),
-                                              result), folder / f"{stem}.png")
+                    histogram = save_png(coloc_histograms((before_a[keep], before_b[keep]),
+                                                          (after_a[keep], after_b[keep]), result),
+                                         folder / f"{stem}.png").resolve()
+                results.append((path, object_id, result, histogram))
     records = []
-    for path, object_id, result in results:
+    for path, object_id, result, histogram in results:
         record = result.to_dict()
         record.update({"image": str(path), "object": object_id})
+        if histogram is not None:
+            record["histogram"] = str(histogram)
         records.append(record)
     if "--json" in outputs:
         single = len(records) == 1 and records[0]["object"] is None
@@ -438,6 +442,24 @@ def _coloc(args) -> int:
         notes = {n for r in records for n in (r["before"]["note"], r["after"]["note"]) if n}
         for note in sorted(notes):
             print(f"note: {note}")
+    return 0
+
+
+def _report(args) -> int:
+    from .matrix import load_matrix
+    from .report import build_report, load_coloc_results, write_report
+
+    inputs = [args.matrix] + ([args.predicted] if args.predicted else []) + list(args.coloc or [])
+    output = _check_output(args.output, inputs)
+    if not output.name.lower().endswith((".html", ".htm")):
+        raise InputError(f"-o {args.output}: the report is HTML; give a name ending in .html")
+    matrix = load_matrix(args.matrix)
+    predicted = load_matrix(args.predicted) if args.predicted else None
+    records = [record for path in args.coloc or [] for record in load_coloc_results(path)]
+    write_report(output, build_report(matrix, matrix_path=args.matrix, predicted=predicted,
+                                      predicted_path=args.predicted, coloc_records=records))
+    if not args.quiet:
+        print(f"wrote {output}")
     return 0
 
 
@@ -544,6 +566,15 @@ def build_parser() -> argparse.ArgumentParser:
     plan.add_argument("--acquisition", choices=["both", "sequential", "simultaneous", "tracks"], default="both",
                       help="modes to rank for each description (both)")
     plan.set_defaults(run=_plan)
+
+    report = sub.add_parser("report", parents=[common], help="one self-contained HTML report",
+                            description="Write one self-contained HTML report: the matrix, measured versus "
+                                        "predicted, and colocalization verdicts.")
+    report.add_argument("--matrix", required=True, metavar="MATRIX.json")
+    report.add_argument("--predicted", metavar="PREDICTED.json", help="add measured versus predicted")
+    report.add_argument("--coloc", action="append", metavar="COLOC.json", help="results of unmix coloc --json")
+    report.add_argument("-o", "--output", required=True, metavar="REPORT.html")
+    report.set_defaults(run=_report)
 
     demo = sub.add_parser("demo", parents=[common], help="run the whole job on the shipped demo scenario",
                           description="Run the tool on the shipped demo scenario and print where the results are.")

@@ -264,6 +264,7 @@ def demo_inputs(stacks: Path | None = None) -> dict:
 def run_demo(outdir, out=None) -> dict:
     """Run the tool on the shipped demo scenario, writing results to `outdir`."""
     out = out or sys.stdout
+    from .matrix import load_matrix
     from .measure import measure_files
     from .summary import matrix_summary
 
@@ -295,12 +296,47 @@ def run_demo(outdir, out=None) -> dict:
         errors[label] = float(np.sqrt(np.mean((unmixed[k] - true_abundances[k]) ** 2)))
         print(f"  {label}: {errors[label]:.1f} (peak signal {true_abundances[k].max():.0f})", file=out)
     comparison, compare_dir = _measured_versus_predicted(matrix, outdir, out)
+    coloc_records = _colocalization(matrix, inputs["sample"], Path(result.output), truth["pairs"], outdir, out)
+
+    from .report import build_report, write_report
+
+    predicted = load_matrix(outdir / "demo_predicted.json")
+    report = write_report(outdir / "demo_report.html", build_report(
+        matrix, matrix_path=matrix_path, predicted=predicted, predicted_path=outdir / "demo_predicted.json",
+        coloc_records=coloc_records, title="Demo: bleed-through and colocalization report (invented scenario)"))
     print(f"\nMatrix:    {matrix_path}\nTable:     {csv_path}\nUnmixed:   {result.output}\n"
-          f"Predicted: {outdir / 'demo_predicted.json'}\nCompared:  {compare_dir}", file=out)
+          f"Predicted: {outdir / 'demo_predicted.json'}\nCompared:  {compare_dir}\n"
+          f"Coloc:     {outdir / 'coloc.json'}\nReport:    {report}", file=out)
     return {"matrix": matrix_path, "csv": csv_path, "unmixed": Path(result.output),
             "truth_inside_ci": int(inside.sum()), "coefficients": int(inside.size), "rms_error": errors,
             "compare": compare_dir, "likely_channel": comparison.likely_channel,
-            "verdicts": {(r["channel"], r["label"]): r["verdict"] for r in comparison.coefficients}}
+            "verdicts": {(r["channel"], r["label"]): r["verdict"] for r in comparison.coefficients},
+            "coloc": {tuple(r["pair"]): r["verdict"] for r in coloc_records}, "report": report}
+
+
+def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdir: Path, out) -> list[dict]:
+    """Before/after colocalization of the demo's two pairs, with histograms; records as coloc writes them."""
+    from .atomic import write_text_atomic
+    from .images import read_image
+    from .plots import coloc_histograms, save_png
+    from .verdict import analyse_pair, pair_planes
+
+    raw = np.asarray(read_image(sample).select_channels(matrix.channels).data)
+    unmixed = np.asarray(read_image(unmixed_path).select_channels(matrix.labels).data)
+    records = []
+    print("\nColocalization before and after unmixing:", file=out)
+    for role in ("independent_but_bleeding", "truly_overlapping"):
+        pair = tuple(pairs[role])
+        result = analyse_pair(raw, matrix, pair, unmixed=unmixed)
+        before_a, before_b, after_a, after_b = pair_planes(raw, matrix, pair, unmixed)
+        histogram = save_png(coloc_histograms((before_a, before_b), (after_a, after_b), result),
+                             outdir / f"coloc_{pair[0]}-{pair[1]}.png")
+        record = {**result.to_dict(), "image": str(sample), "object": None, "histogram": str(histogram.resolve())}
+        records.append(record)
+        print(f"  {pair[0]} / {pair[1]} ({role.replace('_', ' ')}): Pearson r {result.before.pearson:.3f} before, "
+              f"{result.after.pearson:.3f} after: {result.verdict}", file=out)
+    write_text_atomic(outdir / "coloc.json", json.dumps({"results": records}, indent=2, allow_nan=False) + "\n")
+    return records
 
 
 def _measured_versus_predicted(matrix, outdir: Path, out):
