@@ -181,6 +181,8 @@ BAD_INPUT = {
     "coloc stack not a plane": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="stack"), "one plane"),
     "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="renamed"),
                                    "renamed.ome.tif"),
+    "coloc bad thresholds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--thresholds", "5"), "TA,TB"),
+    "coloc bad psf": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--psf", "1.4"), "NA,WAVELENGTH_NM"),
     "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--rounds", "5"), "--rounds"),
     "coloc json is the input": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--json", f["cob"]),
                                 "also an input"),

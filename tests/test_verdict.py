@@ -102,6 +102,11 @@ def test_coloc_command_json_csv_and_objects(demo, demo_matrix_file, tmp_path, ca
     for side in ("before", "after"):
         assert {"pearson", "spearman", "manders_m1", "manders_m2", "thresholds", "icq", "p_value"} <= set(result[side])
     assert (tmp_path / "h" / "sample_Fernlight-Emberin.png").stat().st_size > 0
+    # Given thresholds and a PSF-sized lower bound on the randomisation shift.
+    assert main(["coloc", str(sample), "--matrix", str(demo_matrix_file), "--labels", "Fernlight,Emberin",
+                 "--rounds", "19", "--thresholds", "40,60", "--psf", "1.2,520", "--json", str(out)]) == 0
+    given = json.loads(out.read_text())
+    assert given["before"]["thresholds"] == [40.0, 60.0] and given["after"]["threshold_method"] == "given"
     # Objects: one tiny object is reported with a note, not a crash.
     shape = np.asarray(read_image(sample).data).shape[1:]
     objects = np.zeros(shape, np.uint16)

@@ -323,6 +323,24 @@ def _mask_plane(path: str, shape, what: str) -> np.ndarray:
     return data
 
 
+def _psf_pixels(args, path: str) -> int:
+    """The PSF's full width at half maximum in pixels, 0.51 x wavelength / NA (common practice)."""
+    import math
+
+    from .images import read_image
+
+    try:
+        aperture, wavelength = (float(v) for v in args.psf.split(","))
+    except ValueError:
+        raise InputError(f"--psf {args.psf!r}: give NA,WAVELENGTH_NM, e.g. 1.4,520") from None
+    if not 0 < aperture < 1.7 or not 200 <= wavelength <= 1200:
+        raise InputError(f"--psf {args.psf}: NA must be between 0 and 1.7 and the wavelength 200-1200 nm")
+    pixel = args.pixel_um or read_image(path, axes=args.axes, lazy=True).pixel_size.get("X")
+    if not pixel or pixel <= 0:
+        raise InputError(f"{path}: has no pixel size; give --pixel-um for --psf")
+    return max(1, math.ceil(0.51 * wavelength / 1000 / aperture / pixel))
+
+
 def _coloc(args) -> int:
     import csv
     import io
@@ -350,6 +368,14 @@ def _coloc(args) -> int:
         raise InputError(f"--alpha {args.alpha}: give a level between 0 and 1, e.g. 0.05")
     if args.rounds < 19:
         raise InputError(f"--rounds {args.rounds}: give at least 19 (p cannot go below 1 / (rounds + 1))")
+    thresholds = None
+    if args.thresholds:
+        try:
+            thresholds = tuple(float(v) for v in args.thresholds.split(","))
+        except ValueError:
+            thresholds = ()
+        if len(thresholds) != 2 or not all(np.isfinite(thresholds)):
+            raise InputError(f"--thresholds {args.thresholds!r}: give two numbers, TA,TB")
     inputs = list(args.inputs) + [p for p in (args.matrix, args.mask, args.objects, args.unmixed) if p]
     outputs = {}
     for option, value in (("--json", args.json), ("--csv", args.csv)):
@@ -369,6 +395,7 @@ def _coloc(args) -> int:
             if not ids:
                 raise InputError(f"--objects {args.objects}: holds no object (all 0); give a label image")
             regions = [(i, (objects == i) if mask is None else (objects == i) & mask) for i in ids]
+        min_shift = _psf_pixels(args, path) if args.psf else None
         flat = None
         if args.flat and args.flat != "estimate":
             flat = _plane(args.flat, args, list(matrix.channels), "flat-field image")
@@ -377,7 +404,9 @@ def _coloc(args) -> int:
                 quick = object_id is not None and args.quick_objects
                 result = analyse_pair(raw, matrix, pair, unmixed=unmixed, mask=region, rounds=args.rounds,
                                       seed=args.seed, alpha=args.alpha, min_r=args.min_r, flat=flat,
-                                      estimate_flat=args.flat == "estimate", simulations=0 if quick else SIMULATIONS)
+                                      estimate_flat=args.flat == "estimate", simulations=0 if quick else SIMULATIONS,
+                                      thresholds=thresholds, threshold_method=args.threshold_method,
+                                      min_shift=min_shift)
                 histogram = None
                 if args.histograms:
                     from .plots import coloc_histograms, save_png
@@ -532,6 +561,14 @@ def build_parser() -> argparse.ArgumentParser:
     coloc.add_argument("--seed", type=int, default=0, help="randomisation and simulation seed (0)")
     coloc.add_argument("--alpha", type=float, default=0.05, help="significance level (0.05)")
     coloc.add_argument("--min-r", type=float, default=0.1, help="smallest Pearson r that counts as overlap (0.1)")
+    coloc.add_argument("--thresholds", metavar="TA,TB", help="Manders thresholds of A and B (background-subtracted "
+                                                               "intensity in their primary channels); default Costes")
+    coloc.add_argument("--threshold-method", choices=["costes", "otsu"], default="costes",
+                       help="automatic thresholds when --thresholds is not given (costes)")
+    coloc.add_argument("--psf", metavar="NA,WAVELENGTH_NM",
+                       help="shift the randomisation by at least the PSF size 0.51 x wavelength / NA (needs the "
+                            "image's pixel size, or --pixel-um); the correlation length is used when longer")
+    coloc.add_argument("--pixel-um", type=float, help="pixel size in micrometres (else from the image metadata)")
     coloc.add_argument("--json", metavar="OUT.json", help="write the results as JSON")
     coloc.add_argument("--csv", metavar="OUT.csv", help="write one row per image x pair (x object)")
     coloc.add_argument("--histograms", metavar="DIR", help="write 2-D histograms before/after as PNG")

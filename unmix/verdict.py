@@ -174,7 +174,8 @@ def flat_field(stack: np.ndarray, flats: np.ndarray | None = None, estimate: boo
 def analyse_pair(raw: np.ndarray, matrix: BleedThroughMatrix, pair: tuple[str, str], *, unmixed=None, mask=None,
                  background=None, saturation=None, rounds: int = 200, seed: int = 0, alpha: float = 0.05,
                  min_r: float = 0.1, flat=None, estimate_flat: bool = False, simulations: int = SIMULATIONS,
-                 matrix_draws: int = MATRIX_DRAWS) -> PairResult:
+                 matrix_draws: int = MATRIX_DRAWS, thresholds=None, threshold_method: str = "costes",
+                 min_shift: int | None = None) -> PairResult:
     """Before and after coefficients of `pair` and the verdict, for one field.
 
     Parameters
@@ -187,6 +188,11 @@ def analyse_pair(raw: np.ndarray, matrix: BleedThroughMatrix, pair: tuple[str, s
         Pixels to measure; saturated pixels are removed from it.
     background, saturation : per-channel levels; default the matrix's (background
         estimated from the image when the matrix has none).
+    thresholds, threshold_method : Manders thresholds (t_A, t_B), in units of
+        background-subtracted intensity in each label's primary channel (the unit of
+        the abundances too, so the same pair serves before and after); else "costes" or "otsu".
+    min_shift : the smallest randomisation shift in pixels (e.g. the PSF size); the images'
+        correlation length is used when it is longer.
     """
     from .solve import Unmixer
 
@@ -227,8 +233,14 @@ def analyse_pair(raw: np.ndarray, matrix: BleedThroughMatrix, pair: tuple[str, s
 
     ka, kb = matrix.labels.index(a_label), matrix.labels.index(b_label)
     ca, cb = matrix.channels.index(matrix.primary[a_label]), matrix.channels.index(matrix.primary[b_label])
-    before = coloc.coefficients(signal[ca], signal[cb], region, rounds=rounds, seed=seed)
-    after = coloc.coefficients(unmixed[ka], unmixed[kb], region, rounds=rounds, seed=seed + 1)
+    options = {"rounds": rounds, "thresholds": thresholds, "threshold_method": threshold_method}
+    shift = {} if min_shift is None else {"min_shift": max(min_shift, coloc.correlation_length(signal[ca], region),
+                                                           coloc.correlation_length(signal[cb], region))}
+    before = coloc.coefficients(signal[ca], signal[cb], region, seed=seed, **options, **shift)
+    if min_shift is not None:
+        shift = {"min_shift": max(min_shift, coloc.correlation_length(unmixed[ka], region),
+                                  coloc.correlation_length(unmixed[kb], region))}
+    after = coloc.coefficients(unmixed[ka], unmixed[kb], region, seed=seed + 1, **options, **shift)
 
     rng = np.random.default_rng(seed)
     after_interval = None
