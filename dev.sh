@@ -1,8 +1,8 @@
 #!/usr/bin/env bash
 # Set up and run, on a fresh Debian machine with Python 3.11 (no GPU needed).
 #   ./dev.sh demo   install, then run the demo scenario end to end
-#   ./dev.sh test   install with the test extras (and Debian's chromium for the report's
-#                   browser test, when run as root), then run the whole test suite
+#   ./dev.sh test   install with the test extras (and, as root, Debian's chromium, Xvfb and
+#                   Mesa for the browser and napari tests), then run the whole test suite
 #   ./dev.sh bench  install, then run the benchmarks under tests/benchmarks/
 # The virtual environment lives in .venv (override with UNMIX_VENV).
 set -euo pipefail
@@ -40,13 +40,22 @@ case "$task" in
         ;;
     test)
         setup "[test]"
-        if ! command -v chromium >/dev/null 2>&1 && [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
-            # The report is checked in a real browser: Debian's headless Chromium.
-            apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium >/dev/null
+        if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1 \
+                && ! { command -v chromium && command -v xvfb-run; } >/dev/null 2>&1; then
+            # The report is checked in a real browser (Debian's headless Chromium) and the napari
+            # plugin in a real viewer on a virtual screen (Xvfb, Mesa OpenGL, Qt's X11 libraries).
+            apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium xvfb xauth \
+                libgl1-mesa-dri libglx-mesa0 libegl1 libxkbcommon-x11-0 libxcb-icccm4 libxcb-image0 \
+                libxcb-keysyms1 libxcb-randr0 libxcb-render-util0 libxcb-xinerama0 libxcb-xfixes0 \
+                libxcb-shape0 libxcb-cursor0 libdbus-1-3 libfontconfig1 >/dev/null
         fi
         shift
+        display=()
+        if [ -z "${DISPLAY:-}" ] && command -v xvfb-run >/dev/null 2>&1; then
+            display=(xvfb-run -a -s "-screen 0 1600x1200x24")  # no screen: a virtual one for napari
+        fi
         set +e
-        "$venv/bin/python" -m pytest "$@"
+        "${display[@]}" "$venv/bin/python" -m pytest "$@"
         status=$?
         set -e
         if [ "$status" = 5 ]; then

@@ -1,0 +1,175 @@
+"""The napari plugin in a real viewer (Xvfb + Mesa on a machine without a screen).
+
+Each widget is driven programmatically on the demo data; results are checked against the
+library called directly, and a screenshot of each docked widget is kept under tests/artifacts.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+napari = pytest.importorskip("napari")
+
+from unmix.measure import MeasureSettings, measure_matrix  # noqa: E402
+from unmix.solve import Unmixer  # noqa: E402
+from unmix_napari import widgets  # noqa: E402
+from unmix_napari.widgets import (SESSION_MATRIX, MeasureWidget, OverlapWidget, PredictionWidget,  # noqa: E402
+                                  UnmixWidget, layer_image, session)
+
+ARTIFACTS = Path(__file__).parent / "artifacts"
+CONFIGS = Path(__file__).parent.parent / "configs"
+WAIT_MS = 120_000
+
+
+@pytest.fixture
+def errors(monkeypatch):
+    """Error notifications shown by the widgets."""
+    shown = []
+    monkeypatch.setattr(widgets, "show_error", lambda message: shown.append(str(message)))
+    return shown
+
+
+@pytest.fixture
+def viewer(make_napari_viewer):
+    viewer = make_napari_viewer(show=True)
+    viewer.open_sample("unmix", "demo")
+    return viewer
+
+
+def _screenshot(viewer, widget, name):
+    viewer.window.remove_dock_widget("all")  # only this widget docked
+    viewer.window.add_dock_widget(widget, name=name, area="right")
+    viewer.window._qt_window.resize(1500, 1050)
+    from qtpy.QtWidgets import QApplication
+
+    for _ in range(5):  # let Qt lay the docked widget out before the picture is taken
+        QApplication.processEvents()
+    ARTIFACTS.mkdir(exist_ok=True)
+    path = ARTIFACTS / f"napari_{name.lower().replace(' ', '_')}.png"
+    viewer.screenshot(str(path), canvas_only=False)
+    assert path.stat().st_size > 10_000
+
+
+def _measured(qtbot, viewer):
+    widget = MeasureWidget(viewer)
+    widget.set_controls({label: f"control {label} 1" for label in ("Cobaltin", "Fernlight", "Emberin")})
+    widget.unstained.setCurrentText("unstained")
+    widget.bootstrap.setValue(200)
+    widget.measure()
+    qtbot.waitUntil(lambda: not widget.runner.busy and widget.matrix is not None, timeout=WAIT_MS)
+    return widget
+
+
+def test_sample_data_and_plugin_manifest(viewer):
+    names = [layer.name for layer in viewer.layers]
+    assert "sample" in names and "control Fernlight 1" in names and "unstained" in names
+    assert viewer.layers["sample"].metadata["channel_names"] == ["blue450", "green525", "orange600"]
+
+
+def test_measure_widget_equals_the_library(qtbot, viewer, errors):
+    widget = _measured(qtbot, viewer)
+    controls = {label: [layer_image(viewer.layers[f"control {label} 1"])] for label in ("Cobaltin", "Fernlight",
+                                                                                         "Emberin")}
+    reference = measure_matrix(controls, unstained=layer_image(viewer.layers["unstained"]),
+                               settings=MeasureSettings(n_boot=200))
+    np.testing.assert_allclose(widget.matrix.matrix, reference.matrix)
+    np.testing.assert_allclose(widget.matrix.ci95_high, reference.ci95_high)
+    assert widget.table.rowCount() == 3 and "1 (primary)" in widget.table.item(0, 1).text()
+    assert session(viewer).matrix is widget.matrix and not errors
+    _screenshot(viewer, widget, "Measure")
+
+
+def test_unmix_and_overlap_widgets(qtbot, viewer, errors, tmp_path):
+    matrix = _measured(qtbot, viewer).matrix
+    unmix = UnmixWidget(viewer)
+    unmix.image.setCurrentText("sample")
+    unmix.matrix_source.setCurrentText(SESSION_MATRIX)
+    unmix.unmix()
+    qtbot.waitUntil(lambda: not unmix.runner.busy and "Emberin (unmixed)" in viewer.layers, timeout=WAIT_MS)
+    expected = Unmixer(matrix.matrix).unmix(np.asarray(viewer.layers["sample"].data), matrix.background)
+    for k, label in enumerate(matrix.labels):
+        np.testing.assert_array_equal(viewer.layers[f"{label} (unmixed)"].data, expected[k])
+    assert "saturated (sample)" in viewer.layers
+    assert isinstance(viewer.layers["saturated (sample)"], napari.layers.Labels)
+    _screenshot(viewer, unmix, "Unmix")
+
+    overlap = OverlapWidget(viewer)
+    overlap.refresh_labels()
+    overlap.label_a.setCurrentText("Fernlight")
+    overlap.label_b.setCurrentText("Emberin")
+    overlap.raw.setCurrentText("sample")
+    overlap.rounds.setValue(49)
+    overlap.compute()
+    qtbot.waitUntil(lambda: not overlap.runner.busy and overlap.result is not None, timeout=WAIT_MS)
+    assert overlap.result.verdict == "bleed-through-only"
+    assert "bleed-through-only" in overlap.verdict.text() and overlap.verdict.text().startswith("✗")
+    assert overlap.canvas is not None and not errors
+    # Editing the mask recomputes: paint a labels layer and wait for a new result.
+    mask = viewer.add_labels(np.zeros(viewer.layers["sample"].data.shape[1:], np.uint8), name="cells")
+    overlap.mask.setCurrentText("cells")
+    first = overlap.result
+    mask.data = np.pad(np.ones((200, 200), np.uint8), ((50, 134), (50, 134)))
+    qtbot.waitUntil(lambda: overlap.result is not first and not overlap.runner.busy, timeout=WAIT_MS)
+    assert overlap.result.pixels <= 200 * 200
+    _screenshot(viewer, overlap, "Overlap review")
+
+    # The writer contribution: the unmixed layers as one OME-TIFF, channels named by label.
+    from unmix.images import read_image
+
+    viewer.layers.selection = {viewer.layers[f"{label} (unmixed)"] for label in matrix.labels}
+    written = viewer.layers.save(str(tmp_path / "unmixed.ome.tif"), selected=True, plugin="unmix")
+    assert written and read_image(tmp_path / "unmixed.ome.tif").n_channels == 3
+
+
+def test_prediction_widget_compares_with_the_measured_matrix(qtbot, viewer, errors):
+    _measured(qtbot, viewer)
+    widget = PredictionWidget(viewer)
+    widget.path.setText(str(CONFIGS / "demo_optics.toml"))
+    widget.predict()
+    qtbot.waitUntil(lambda: not widget.runner.busy and widget.prediction is not None, timeout=WAIT_MS)
+    verdicts = [widget.table.item(r, 5).text() for r in range(widget.table.rowCount())]
+    assert "higher" in verdicts and "orange600" in widget.summary.text()
+    assert widget.canvas is not None and not errors
+    _screenshot(viewer, widget, "Predicted leakage")
+
+
+def test_matrix_reader_gives_a_matrix_source(qtbot, viewer, errors, tmp_path):
+    matrix = _measured(qtbot, viewer).matrix
+    path = matrix.save(tmp_path / "m.json")
+    viewer.open(str(path), plugin="unmix")
+    layer = viewer.layers["matrix m.json"]
+    assert layer.data.shape == (3, 3) and "unmix_matrix" in layer.metadata
+    unmix = UnmixWidget(viewer)
+    unmix.image.setCurrentText("sample")
+    unmix.matrix_source.setCurrentText("matrix m.json")
+    unmix.unmix()
+    qtbot.waitUntil(lambda: not unmix.runner.busy, timeout=WAIT_MS)
+    assert "Cobaltin (unmixed)" in viewer.layers and not errors
+
+
+def test_bad_input_becomes_a_notification(qtbot, make_napari_viewer, errors):
+    viewer = make_napari_viewer()
+    viewer.add_image(np.zeros((2, 16, 16), np.uint16), name="two channels",
+                     metadata={"channel_names": ["a", "b"]})
+    unmix = UnmixWidget(viewer)
+    unmix.image.setCurrentText("two channels")
+    unmix.unmix()  # no matrix yet
+    assert errors and "no matrix" in errors[-1]
+    unmix.matrix_source.setCurrentText("file")
+    unmix.matrix_path.setText(str(CONFIGS / "demo_optics.toml"))
+    unmix.unmix()  # not a matrix file
+    assert "demo_optics.toml" in errors[-1]
+    overlap = OverlapWidget(viewer)
+    overlap.compute()
+    assert "no matrix" in errors[-1]
+    measure = MeasureWidget(viewer)
+    measure.set_controls({"A": "two channels", "B": "two channels"})
+    measure.measure()
+    qtbot.waitUntil(lambda: not measure.runner.busy, timeout=WAIT_MS)
+    assert len(errors) >= 4 and measure.matrix is None  # reported, the viewer goes on
+    prediction = PredictionWidget(viewer)
+    prediction.predict()
+    assert "description" in errors[-1]
