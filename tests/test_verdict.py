@@ -138,3 +138,25 @@ def test_constant_channel_is_reported_as_undefined(demo_matrix_file, tmp_path, c
     assert "undefined" in out and "nan" not in out.lower() and "constant" in out
     result = json.loads((tmp_path / "o.json").read_text())
     assert result["before"]["pearson"] is None and result["verdict"] == "none"
+
+
+def test_label_names_cannot_escape_the_histogram_folder(tmp_path, capsys):
+    # A label name from a user's matrix file becomes part of a file name only after sanitising.
+    from unmix.atomic import safe_file_name
+    from unmix.matrix import BleedThroughMatrix
+
+    assert safe_file_name("../../etc/passwd") == "_.._etc_passwd"
+    assert safe_file_name("A/B\\C<D>") == "A_B_C_D_" and safe_file_name("...") == "_"
+    evil = "../../outside"
+    values = np.array([[1.0, 0.1], [0.3, 1.0]])
+    BleedThroughMatrix(kind="measured", channels=("a", "b"), labels=(evil, "B"), primary={evil: "a", "B": "b"},
+                       matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.zeros(2),
+                       background_source="dark").save(tmp_path / "m.json")
+    rng = np.random.default_rng(0)
+    image = rng.integers(0, 100, (2, 48, 48)).astype(np.uint16)
+    tifffile.imwrite(tmp_path / "img.ome.tif", image, ome=True, metadata={"axes": "CYX", "Channel": {"Name": ["a", "b"]}})
+    folder = tmp_path / "deep" / "plots"
+    assert main(["coloc", str(tmp_path / "img.ome.tif"), "--matrix", str(tmp_path / "m.json"), "--labels",
+                 f"{evil},B", "--rounds", "19", "--histograms", str(folder), "--quiet"]) == 0
+    written = [p for p in tmp_path.rglob("*.png")]
+    assert written and all(p.parent == folder for p in written)

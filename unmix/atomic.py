@@ -19,6 +19,16 @@ from pathlib import Path
 PARTIAL_SUFFIX = ".partial"
 
 
+def safe_file_name(text: str) -> str:
+    """`text` made safe as one file name: letters, digits, '-', '_' and '.' kept, anything else
+    (path separators included) replaced by '_', no leading dot, never empty. Label and channel
+    names from users' files become parts of output names only through this."""
+    import re
+
+    name = re.sub(r"[^A-Za-z0-9._-]", "_", str(text)).lstrip(".")
+    return name or "_"
+
+
 def temporary_sibling(final: Path) -> Path:
     """A unique temporary name beside `final` that ends in ``.partial``."""
     final = Path(final)

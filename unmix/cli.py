@@ -409,6 +409,7 @@ def _coloc(args) -> int:
                                       min_shift=min_shift)
                 histogram = None
                 if args.histograms:
+                    from .atomic import safe_file_name
                     from .plots import coloc_histograms, save_png
                     from .verdict import pair_planes
 
@@ -416,8 +417,8 @@ def _coloc(args) -> int:
                     folder.mkdir(parents=True, exist_ok=True)
                     before_a, before_b, after_a, after_b = pair_planes(raw, matrix, pair, unmixed)
                     keep = np.ones(raw.shape[1:], bool) if region is None else region
-                    stem = Path(path).name.split(".")[0] + f"_{pair[0]}-{pair[1]}" + (
-                        f"_object{object_id}" if object_id is not None else "")
+                    stem = safe_file_name(Path(path).name.split(".")[0] + f"_{pair[0]}-{pair[1]}" + (
+                        f"_object{object_id}" if object_id is not None else ""))
                     histogram = save_png(coloc_histograms((before_a[keep], before_b[keep]),
                                                           (after_a[keep], after_b[keep]), result),
                                          folder / f"{stem}.png").resolve()

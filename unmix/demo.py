@@ -316,7 +316,7 @@ def run_demo(outdir, out=None) -> dict:
 
 def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdir: Path, out) -> list[dict]:
     """Before/after colocalization of the demo's two pairs, with histograms; records as coloc writes them."""
-    from .atomic import write_text_atomic
+    from .atomic import safe_file_name, write_text_atomic
     from .images import read_image
     from .plots import coloc_histograms, save_png
     from .verdict import analyse_pair, pair_planes
@@ -330,7 +330,7 @@ def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdi
         result = analyse_pair(raw, matrix, pair, unmixed=unmixed)
         before_a, before_b, after_a, after_b = pair_planes(raw, matrix, pair, unmixed)
         histogram = save_png(coloc_histograms((before_a, before_b), (after_a, after_b), result),
-                             outdir / f"coloc_{pair[0]}-{pair[1]}.png")
+                             outdir / safe_file_name(f"coloc_{pair[0]}-{pair[1]}.png"))
         record = {**result.to_dict(), "image": str(sample), "object": None, "histogram": str(histogram.resolve())}
         records.append(record)
         print(f"  {pair[0]} / {pair[1]} ({role.replace('_', ' ')}): Pearson r {result.before.pearson:.3f} before, "
