@@ -25,6 +25,7 @@ from another matrix or input.
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import hashlib
 import json
@@ -390,8 +391,6 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     scratch files beside the outputs and written out at the end, so memory
     stays bounded by a few blocks whatever the size of the stack.
     """
-    import contextlib
-
     import tifffile
 
     tallies = [_SeriesTally() for _ in jobs]
@@ -466,8 +465,6 @@ def _totals(tallies) -> dict:
 def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
                         settings: ApplySettings, names: dict, compute) -> dict:
     """OME-Zarr input gives OME-Zarr outputs: blocks computed in parallel batches, each stored in its chunk."""
-    import contextlib
-
     import zarr
     from ome_zarr.writer import write_multiscales_metadata
 
@@ -632,19 +629,39 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
 
 
 def _record(manifest_path: Path, result: FileResult, matrix_sha: str, settings: ApplySettings) -> None:
-    try:
-        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-        if not isinstance(manifest, dict) or not isinstance(manifest.get("outputs"), dict):
-            raise ValueError
-    except (OSError, ValueError):
-        manifest = {"format": "unmix-manifest", "version": 1, "outputs": {}}
+    """Add one finished output to the manifest: read, update and replace it under a lock, so that
+    runs sharing an output folder do not lose each other's entries."""
     from .provenance import utc_now
 
-    manifest["outputs"][Path(result.output).name] = {
-        "input": result.input, "matrix_sha256": matrix_sha, "method": settings.method, "finished": utc_now(),
-        "nan_pixels": result.nan_pixels, "saturated_pixels": result.saturated_pixels,
-    }
-    write_text_atomic(manifest_path, json.dumps(manifest, indent=2) + "\n")
+    with _manifest_lock(manifest_path):
+        try:
+            manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+            if not isinstance(manifest, dict) or not isinstance(manifest.get("outputs"), dict):
+                raise ValueError
+        except (OSError, ValueError):
+            manifest = {"format": "unmix-manifest", "version": 1, "outputs": {}}
+        manifest["outputs"][Path(result.output).name] = {
+            "input": result.input, "matrix_sha256": matrix_sha, "method": settings.method, "finished": utc_now(),
+            "nan_pixels": result.nan_pixels, "saturated_pixels": result.saturated_pixels,
+        }
+        write_text_atomic(manifest_path, json.dumps(manifest, indent=2) + "\n")
+
+
+@contextlib.contextmanager
+def _manifest_lock(manifest_path: Path):
+    """An exclusive advisory lock (POSIX flock) on a hidden file beside the manifest; released when
+    the process ends, even when it is killed."""
+    try:
+        import fcntl
+    except ImportError:  # no flock on this platform: atomic replacement alone
+        yield
+        return
+    with open(manifest_path.with_name(f".{manifest_path.name}.lock"), "a+b") as handle:
+        fcntl.flock(handle, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
 
 
 def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path, settings: ApplySettings,

@@ -1,0 +1,105 @@
+"""Large fuzzing budget: mutated matrix, description, spectrum and TIFF files fed to every reader
+in-process (default 10,000 examples each) and to the command line in subprocesses (default 300).
+
+Passes when no reader raises anything but InputError and no command exits with a code other than
+0 or 2 or prints a traceback. Prints the counts.
+
+    python tests/benchmarks/fuzz_readers.py [--examples 10000] [--cli-runs 300]
+"""
+
+from __future__ import annotations
+
+import argparse
+import random
+import subprocess
+import sys
+import tempfile
+import traceback
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from test_reliability import _seed_files, mutate, read_with  # noqa: E402
+
+from unmix.errors import InputError  # noqa: E402
+
+NUMBERS = [b"1e309", b"-1e309", b"NaN", b"-0", b"99999999999999999999", b"1e-320", b"\"x\"", b"[]", b"{}"]
+
+
+def random_mutation(rng: random.Random):
+    kind = rng.choice(["flip", "truncate", "insert", "number"])
+    position = rng.randrange(10**6)
+    if kind == "flip":
+        return kind, position, rng.randrange(8)
+    if kind == "truncate":
+        return kind, position, 0
+    if kind == "insert":
+        return kind, position, bytes(rng.randrange(256) for _ in range(rng.randint(1, 16)))
+    return kind, position, rng.choice(NUMBERS)
+
+
+def mutated(original: bytes, rng: random.Random) -> bytes:
+    data = original
+    for _ in range(rng.randint(1, 4)):
+        data = mutate(data, random_mutation(rng))
+    return data
+
+
+def main():
+    parser = argparse.ArgumentParser()
+    parser.add_argument("--examples", type=int, default=10_000)
+    parser.add_argument("--cli-runs", type=int, default=300)
+    args = parser.parse_args()
+    rng = random.Random(0)
+    failures = 0
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        seeds = _seed_files(folder)
+        originals = {kind: Path(path).read_bytes() for kind, path in seeds.items()}
+        for kind, path in seeds.items():
+            target = folder / f"fuzz_{Path(path).name}"
+            counts = {"accepted": 0, "refused": 0, "crashed": 0}
+            for _ in range(args.examples):
+                target.write_bytes(mutated(originals[kind], rng))
+                try:
+                    read_with(kind, target)
+                    counts["accepted"] += 1
+                except InputError:
+                    counts["refused"] += 1
+                except Exception:  # noqa: BLE001 - what the fuzzing looks for
+                    counts["crashed"] += 1
+                    if counts["crashed"] <= 3:
+                        traceback.print_exc()
+            failures += counts["crashed"]
+            print(f"{kind}: {args.examples} examples: {counts['accepted']} read, {counts['refused']} refused "
+                  f"with a clear error, {counts['crashed']} other exceptions")
+        commands = {
+            "matrix": lambda p: ["report", "--matrix", str(p), "-o", str(folder / "r.html")],
+            "description": lambda p: ["predict", "--config", str(p), "-o", str(folder / "p.json")],
+            "image": lambda p: ["apply", "--matrix", str(seeds["matrix"]), str(p), "-o", str(folder / "out"),
+                                "--overwrite"],
+        }
+        codes = {"0": 0, "2": 0, "other": 0, "traceback": 0}
+        for run in range(args.cli_runs):
+            kind = list(commands)[run % len(commands)]
+            target = folder / f"cli_{Path(seeds[kind]).name}"
+            target.write_bytes(mutated(originals[kind], rng))
+            if kind == "description":
+                (folder / "em.csv").write_bytes(originals["spectrum"])
+            result = subprocess.run([sys.executable, "-m", "unmix.cli", *commands[kind](target), "--quiet"],
+                                    capture_output=True, text=True)
+            key = str(result.returncode) if result.returncode in (0, 2) else "other"
+            codes[key] += 1
+            if "Traceback" in result.stderr:
+                codes["traceback"] += 1
+            if key == "other" or "Traceback" in result.stderr:
+                print(f"{kind}: exit {result.returncode}: {result.stderr[-500:]}")
+        failures += codes["other"] + codes["traceback"]
+        print(f"command line: {args.cli_runs} runs: exit 0 {codes['0']}, exit 2 {codes['2']}, "
+              f"other exit codes {codes['other']}, tracebacks {codes['traceback']}")
+    print("result:", "no crash" if failures == 0 else f"{failures} FAILURES")
+    return 1 if failures else 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
