@@ -44,6 +44,7 @@ def files(tmp_path, demo):
     tifffile.imwrite(tmp_path / "four_d.tif", np.stack([cob, cob]), photometric="minisblack")  # shape only, no axes
     _descriptions(tmp_path)
     _coloc_files(tmp_path, cob.shape[1:])
+    _odd_files(tmp_path)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
     return paths
@@ -65,6 +66,35 @@ name = "g"
 source = { laser_nm = 488.0, power_mw = 3.0 }
 emission_filter = { band = "525/50" }
 """
+
+
+def _odd_files(folder: Path) -> None:
+    """Images of unsupported pixel types, a tiny TIFF declaring a huge image, broken matrix files."""
+    import struct
+
+    tifffile.imwrite(folder / "complex.tif", np.ones((3, 8, 8), np.complex64), photometric="minisblack")
+    tifffile.imwrite(folder / "booleans.tif", np.ones((3, 8, 8), bool), photometric="minisblack")
+    huge = folder / "huge.tif"
+    tifffile.imwrite(huge, np.ones((3, 4, 4), np.uint16), photometric="minisblack")
+    data = bytearray(huge.read_bytes())
+    with tifffile.TiffFile(huge) as tif:
+        for page in tif.pages:
+            for code in (256, 257):  # ImageWidth, ImageLength
+                tag = page.tags[code]
+                data[tag.valueoffset:tag.valueoffset + 2] = struct.pack("<H", 60000)
+    huge.write_bytes(bytes(data))
+    good = json.loads((folder / "coloc_matrix.json").read_text())
+    (folder / "malformed_matrix.json").write_text('{"format": "unmix-matrix", "version": 1,')
+    variants = {"version_matrix": {"version": 7}, "shape_matrix": {"matrix": [[1.0, 0.0, 0.0], [0.2, 1.0]]},
+                "ci_matrix": {"ci95_high": [[1.0, 0.0, 0.0], [0.2, 1.0, 0.0], [0.0, 0.0, 1.0]]}}
+    for name, change in variants.items():
+        (folder / f"{name}.json").write_text(json.dumps({**good, **change}))
+    (folder / "nan_matrix.json").write_text(json.dumps(good).replace('"matrix": [[1.0', '"matrix": [[NaN', 1))
+
+
+def _apply(files, matrix, image="cob"):
+    folder = Path(files["out"]).parent
+    return ["apply", "--matrix", folder / f"{matrix}.json", files[image], "-o", folder / "unmixed"]
 
 
 def _coloc_files(folder: Path, shape) -> None:
@@ -186,6 +216,15 @@ BAD_INPUT = {
     "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--rounds", "5"), "--rounds"),
     "coloc json is the input": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--json", f["cob"]),
                                 "also an input"),
+    "complex pixels": (lambda f: _measure(f"A={f['complex']}", extra=["-o", f["out"]]), "complex64"),
+    "boolean pixels": (lambda f: _measure(f"A={f['booleans']}", extra=["-o", f["out"]]), "bool"),
+    "huge image declared in a tiny file": (lambda f: _measure(f"A={f['huge']}", extra=["-o", f["out"]]), "huge.tif"),
+    "matrix malformed json": (lambda f: _apply(f, "malformed_matrix"), "malformed_matrix.json"),
+    "matrix wrong version": (lambda f: _apply(f, "version_matrix"), "version"),
+    "matrix inconsistent shapes": (lambda f: _apply(f, "shape_matrix"), "shape_matrix.json"),
+    "matrix interval excludes its value": (lambda f: _apply(f, "ci_matrix"), "interval"),
+    "matrix non-finite value": (lambda f: _apply(f, "nan_matrix"), "nan_matrix.json"),
+    "apply complex pixels": (lambda f: _apply(f, "coloc_matrix", image="complex"), "complex64"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],

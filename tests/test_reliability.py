@@ -238,3 +238,32 @@ def test_readers_never_crash_on_mutated_files(kind, seeds, tmp_path_factory):
             assert "\n" not in str(exc) and str(target.name) in str(exc) or kind == "description"
 
     check()
+
+
+def test_no_subcommand_modifies_its_inputs(tmp_path, demo):
+    # sha256 and modification time of every input, before and after each subcommand.
+    import shutil
+
+    from unmix.cli import main
+
+    configs = Path(__file__).parent.parent / "configs"
+    for name in ("demo_optics.toml", "label_shapes.toml"):
+        shutil.copy(configs / name, tmp_path / name)
+    matrix = _matrix(tmp_path)
+    sample = tmp_path / "sample.ome.tif"
+    shutil.copy(demo["sample"], sample)
+    inputs = [str(p) for p in (matrix, sample, tmp_path / "demo_optics.toml", tmp_path / "label_shapes.toml")]
+    before = fingerprint(inputs)
+    commands = [
+        ["predict", "--config", str(tmp_path / "demo_optics.toml"), "-o", str(tmp_path / "p.json")],
+        ["compare", str(matrix), str(tmp_path / "p.json"), "-o", str(tmp_path / "cmp")],
+        ["plan", str(tmp_path / "demo_optics.toml")],
+        ["apply", "--matrix", str(matrix), str(sample), "-o", str(tmp_path / "out")],
+        ["coloc", str(sample), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin", "--rounds", "19",
+         "--json", str(tmp_path / "c.json")],
+        ["report", "--matrix", str(matrix), "--predicted", str(tmp_path / "p.json"), "--coloc",
+         str(tmp_path / "c.json"), "-o", str(tmp_path / "r.html")],
+    ]
+    for argv in commands:
+        assert main([*argv, "--quiet"]) == 0, argv
+        assert fingerprint(inputs) == before, argv[0]

@@ -337,6 +337,14 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: li
     return images
 
 
+def _check_pixel_type(dtype, path: Path) -> None:
+    """Integer and floating-point pixels are accepted (the contract); anything else is refused."""
+    dtype = np.dtype(dtype)
+    if dtype.kind not in "uif":
+        raise InputError(f"{path}: pixel type {dtype} is not supported; convert the image to integer or "
+                         "floating-point pixels")
+
+
 def _short(exc: Exception) -> str:
     text = " ".join(str(exc).split()) or type(exc).__name__
     return text[:200]
@@ -375,6 +383,7 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
             data = series.asarray()
             if data.size != n_pixels:
                 raise InputError(f"{path}: truncated image data in series {index}; check the file")
+        _check_pixel_type(data.dtype, path)
         data, canonical = to_canonical(data, axes)
         n_channels = data.shape[canonical.index("C")]
         names, sizes = ome[index] if index < len(ome) else ([], {})
@@ -447,6 +456,7 @@ def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: 
             for letter, value in zip(axes, transform["scale"]):
                 if letter in "XYZ":
                     sizes[letter] = float(value)
+    _check_pixel_type(array.dtype, path)
     data = da.from_zarr(array) if lazy else np.asarray(array[...])
     data, canonical = to_canonical(data, axes)
     n_channels = data.shape[canonical.index("C")]

@@ -36,6 +36,7 @@ else is integrated on the grid. Parsing uses :mod:`tomllib` (data only).
 
 from __future__ import annotations
 
+import math
 import tomllib
 from dataclasses import dataclass
 from functools import partial
@@ -226,13 +227,20 @@ def _number(table: dict, key: str, where: str, default=None, positive=True, uppe
     value = table.get(key, default)
     if value is None:
         raise InputError(f"{where}: '{key}' is missing; give it")
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value):
-        raise InputError(f"{where}: '{key}' must be a number, not {value!r}")
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not _finite(value):
+        raise InputError(f"{where}: '{key}' must be a finite number of sensible size, not {value!r}")
     if positive and not value > 0:
         raise InputError(f"{where}: '{key}' must be positive, not {value!r}")
     if upper is not None and value > upper:
         raise InputError(f"{where}: '{key}' must be at most {upper}, not {value!r}")
     return float(value)
+
+
+def _finite(value) -> bool:
+    try:
+        return math.isfinite(float(value))
+    except OverflowError:  # an integer too large for a float
+        return False
 
 
 def _grid(value, path: Path) -> spectra.Grid:
