@@ -267,3 +267,65 @@ def test_no_subcommand_modifies_its_inputs(tmp_path, demo):
     for argv in commands:
         assert main([*argv, "--quiet"]) == 0, argv
         assert fingerprint(inputs) == before, argv[0]
+
+
+def test_output_folder_read_only_mid_batch_keeps_finished_files(tmp_path, monkeypatch, capsys):
+    # Simulated (root ignores permission bits): writing the second input's output fails with
+    # EACCES; the first output stays, the second leaves nothing, one clear error line, exit 2.
+    import errno
+
+    import unmix.batch as batch
+    from unmix.cli import main
+
+    matrix = _matrix(tmp_path)
+    inputs = _batch(tmp_path, files=2, planes=2, size=32)
+    real = batch._write_outputs
+    calls = []
+
+    def read_only_after_first(*args, **kwargs):
+        calls.append(1)
+        if len(calls) > 1:
+            raise PermissionError(errno.EACCES, "Permission denied")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(batch, "_write_outputs", read_only_after_first)
+    assert main(["apply", "--matrix", str(matrix), *inputs, "-o", str(tmp_path / "out"), "--quiet"]) == 2
+    errors = [line for line in capsys.readouterr().err.splitlines() if line.startswith("error:")]
+    assert len(errors) == 1 and "s1.unmixed.ome.tif" in errors[0] and "Permission denied" in errors[0]
+    names = sorted(p.name for p in (tmp_path / "out").iterdir() if not p.name.startswith("."))
+    assert names == ["s0.saturation.ome.tif", "s0.unmixed.ome.tif", "unmix-manifest.json"]
+    read_image(tmp_path / "out" / "s0.unmixed.ome.tif")
+
+
+@pytest.mark.slow
+def test_a_dask_worker_dying_mid_run_changes_nothing(tmp_path):
+    # Two worker processes; one is killed while the batch runs: its tasks are computed again
+    # on the other, and the outputs equal the local run's.
+    import os
+    import threading
+
+    from distributed import Client, LocalCluster
+
+    from unmix.batch import ApplySettings, apply_matrix
+
+    matrix = load_matrix(_matrix(tmp_path))
+    inputs = _batch(tmp_path, files=2, planes=48, size=256)
+    apply_matrix(matrix, inputs, tmp_path / "local")
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster, Client(cluster) as client:
+        pids = list(client.run(os.getpid).values())
+        results = {}
+        run = threading.Thread(target=lambda: results.update(out=apply_matrix(
+            matrix, inputs, tmp_path / "cluster", settings=ApplySettings(batch_blocks=2),
+            scheduler=cluster.scheduler_address)))
+        run.start()
+        deadline = time.monotonic() + 120
+        while not list((tmp_path / "cluster").glob(".s0.unmixed*.partial")) and time.monotonic() < deadline:
+            time.sleep(0.01)  # until the first output is being written
+        assert run.is_alive()  # the batch is running when the worker dies
+        os.kill(pids[0], signal.SIGKILL)
+        run.join(timeout=300)
+        assert not run.is_alive()
+    assert all(r.status == "written" for r in results["out"])
+    names = [p.name for p in (tmp_path / "local").glob("*.ome.tif")]
+    _same_outputs(tmp_path / "local", tmp_path / "cluster", names)
