@@ -129,6 +129,7 @@ def _descriptions(folder: Path) -> None:
         "csv_decreasing": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "decreasing.csv" }'),
         "csv_negative": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "negative.csv" }'),
         "csv_single": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "single.csv" }'),
+        "csv_duplicate": DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "duplicate.csv" }'),
         "invisible": DESCRIPTION.replace("peak_nm = 520, fwhm_nm = 40", "peak_nm = 800, fwhm_nm = 20").replace(
             "peak_nm = 490", "peak_nm = 760") + DESCRIPTION[DESCRIPTION.index("[[label]]"):DESCRIPTION.index(
                 "[[channel]]")].replace('"A"', '"B"'),
@@ -143,6 +144,7 @@ def _descriptions(folder: Path) -> None:
     (folder / "decreasing.csv").write_text("520,0.1\n510,0.2\n")
     (folder / "negative.csv").write_text("500,0.1\n510,-0.2\n")
     (folder / "single.csv").write_text("500,0.1\n")
+    (folder / "duplicate.csv").write_text("500,0.1\n510,0.2\n510,0.3\n")
     (folder / "good.csv").write_text("500,0.1\n600,0.2\n")
 
 
@@ -194,6 +196,7 @@ BAD_INPUT = {
     "csv spectrum decreasing": (lambda f: _predict(f, "csv_decreasing"), "decreasing.csv"),
     "csv spectrum negative": (lambda f: _predict(f, "csv_negative"), "negative.csv"),
     "csv spectrum single point": (lambda f: _predict(f, "csv_single"), "single.csv"),
+    "csv spectrum duplicate wavelength": (lambda f: _predict(f, "csv_duplicate"), "appears twice"),
     "label invisible everywhere": (lambda f: _predict(f, "invisible"), "'A'"),
     "unknown spectrum unit": (lambda f: _predict(f, "bad_unit"), "lumens"),
     "description not toml": (lambda f: _predict(f, "not_toml"), "not_toml.toml"),

@@ -173,3 +173,39 @@ def test_bad_input_becomes_a_notification(qtbot, make_napari_viewer, errors):
     prediction = PredictionWidget(viewer)
     prediction.predict()
     assert "description" in errors[-1]
+
+
+def test_unmix_widget_keeps_dask_layers_lazy(qtbot, make_napari_viewer, errors, tmp_path):
+    # A stack larger than memory stays a dask array: unmixed lazily, block by block.
+    import dask.array as da
+
+    viewer = make_napari_viewer()
+    rng = np.random.default_rng(0)
+    stack = rng.integers(100, 3000, (3, 4, 64, 64)).astype(np.uint16)  # C Z Y X
+    viewer.add_image(da.from_array(stack, chunks=(1, 1, 64, 64)), name="big",
+                     metadata={"channel_names": ["blue450", "green525", "orange600"]})
+    from unmix.matrix import load_matrix
+
+    path = _matrix_file(tmp_path)
+    matrix = load_matrix(path)
+    unmix = UnmixWidget(viewer)
+    unmix.image.setCurrentText("big")
+    unmix.matrix_source.setCurrentText("file")
+    unmix.matrix_path.setText(str(path))
+    unmix.unmix()
+    qtbot.waitUntil(lambda: not unmix.runner.busy and "Emberin (unmixed)" in viewer.layers, timeout=WAIT_MS)
+    layer = viewer.layers["Fernlight (unmixed)"]
+    assert hasattr(layer.data, "compute") and not errors
+    expected = Unmixer(matrix.matrix).unmix(stack, matrix.background)
+    np.testing.assert_array_equal(np.asarray(layer.data), expected[1])
+
+
+def _matrix_file(folder):
+    from unmix.matrix import BleedThroughMatrix
+
+    values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
+    return BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
+                              labels=("Cobaltin", "Fernlight", "Emberin"),
+                              primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                              matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
+                              background=np.full(3, 100.0), background_source="dark").save(folder / "m.json")
