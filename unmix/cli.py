@@ -349,7 +349,7 @@ def _coloc(args) -> int:
     from .atomic import write_text_atomic
     from .matrix import load_matrix
     from .summary import table
-    from .verdict import SIMULATIONS, analyse_pair
+    from .verdict import MATRIX_DRAWS, SIMULATIONS, analyse_pair, unmix_plane
 
     matrix = load_matrix(args.matrix)
     pairs = []
@@ -384,7 +384,10 @@ def _coloc(args) -> int:
     results = []
     for path in args.inputs:
         raw = _plane(path, args, list(matrix.channels))
-        unmixed = _plane(args.unmixed, args, list(matrix.labels), "unmixed image") if args.unmixed else None
+        if args.unmixed:
+            unmixed = _plane(args.unmixed, args, list(matrix.labels), "unmixed image")
+        else:  # once per image, shared by every pair and object
+            unmixed = unmix_plane(raw, matrix)
         mask = _mask_plane(args.mask, raw.shape[1:], "--mask").astype(bool) if args.mask else None
         if mask is not None and not mask.any():
             raise InputError(f"--mask {args.mask}: selects no pixel; give a mask with pixels set")
@@ -405,6 +408,7 @@ def _coloc(args) -> int:
                 result = analyse_pair(raw, matrix, pair, unmixed=unmixed, mask=region, rounds=args.rounds,
                                       seed=args.seed, alpha=args.alpha, min_r=args.min_r, flat=flat,
                                       estimate_flat=args.flat == "estimate", simulations=0 if quick else SIMULATIONS,
+                                      matrix_draws=0 if quick else MATRIX_DRAWS,
                                       thresholds=thresholds, threshold_method=args.threshold_method,
                                       min_shift=min_shift)
                 histogram = None
@@ -574,7 +578,8 @@ def build_parser() -> argparse.ArgumentParser:
     coloc.add_argument("--csv", metavar="OUT.csv", help="write one row per image x pair (x object)")
     coloc.add_argument("--histograms", metavar="DIR", help="write 2-D histograms before/after as PNG")
     coloc.add_argument("--quick-objects", action="store_true",
-                       help="with --objects: skip the bleed-through-only simulation per object (faster)")
+                       help="with --objects: per object, skip the bleed-through-only simulation and the "
+                            "matrix-uncertainty interval (much faster with many objects)")
     _add_image_options(coloc)
     coloc.set_defaults(run=_coloc)
 

@@ -294,14 +294,19 @@ def _background(raw: np.ndarray, matrix: BleedThroughMatrix, background) -> np.n
     return np.asarray(background, dtype=np.float64)
 
 
+def unmix_plane(raw: np.ndarray, matrix: BleedThroughMatrix, background=None) -> np.ndarray:
+    """The abundances (K, Y, X) of a plane (C, Y, X), background as in :func:`analyse_pair`."""
+    from .solve import Unmixer
+
+    return Unmixer(matrix.matrix).unmix(raw, _background(raw, matrix, background))
+
+
 def pair_planes(raw: np.ndarray, matrix: BleedThroughMatrix, pair: tuple[str, str], unmixed=None, background=None):
     """The planes a pair is measured on: A's and B's primary channels after background subtraction,
     and their unmixed abundances (computed here when not given)."""
-    from .solve import Unmixer
-
     background = _background(raw, matrix, background)
     if unmixed is None:
-        unmixed = Unmixer(matrix.matrix).unmix(raw, background)
+        unmixed = unmix_plane(raw, matrix, background)
     ka, kb = (matrix.labels.index(label) for label in pair)
     ca, cb = (matrix.channels.index(matrix.primary[label]) for label in pair)
     return (raw[ca] - background[ca], raw[cb] - background[cb], np.asarray(unmixed[ka], dtype=np.float64),
