@@ -160,3 +160,23 @@ def test_label_names_cannot_escape_the_histogram_folder(tmp_path, capsys):
                  f"{evil},B", "--rounds", "19", "--histograms", str(folder), "--quiet"]) == 0
     written = [p for p in tmp_path.rglob("*.png")]
     assert written and all(p.parent == folder for p in written)
+
+
+def test_flat_field_is_recorded_and_removes_illumination_correlation():
+    # Uneven illumination alone makes two independent channels correlate (common practice);
+    # dividing by the flats removes it, and the result says that it was applied.
+    from unmix.matrix import BleedThroughMatrix
+
+    rng = np.random.default_rng(4)
+    yy, xx = np.mgrid[0:96, 0:96]
+    illumination = 1.0 - 0.6 * ((yy - 48) ** 2 + (xx - 48) ** 2) / (2 * 48**2)
+    independent = rng.gamma(16.0, 100.0, (2, 96, 96))
+    raw = (100 + independent * illumination).astype(np.float32)
+    matrix = BleedThroughMatrix(kind="measured", channels=("a", "b"), labels=("A", "B"), primary={"A": "a", "B": "b"},
+                                matrix=np.eye(2), ci95_low=np.eye(2), ci95_high=np.eye(2),
+                                background=np.full(2, 100.0), background_source="dark")
+    plain = analyse_pair(raw, matrix, ("A", "B"), rounds=19, simulations=0, matrix_draws=0)
+    flats = np.stack([illumination, illumination])
+    corrected = analyse_pair(raw, matrix, ("A", "B"), rounds=19, simulations=0, matrix_draws=0, flat=flats)
+    assert plain.flat_field == "none" and corrected.flat_field == "flat images"
+    assert plain.before.pearson > 0.1 and abs(corrected.before.pearson) < 0.05

@@ -228,8 +228,13 @@ def analyse_pair(raw: np.ndarray, matrix: BleedThroughMatrix, pair: tuple[str, s
         raise InputError(f"unmixed image has shape {unmixed.shape}; expected {(len(matrix.labels),) + raw.shape[1:]} "
                          "(one channel per label of the matrix, the same plane)")
     signal, method = flat_field(signal, flat, estimate_flat)
-    if method != "none":
-        unmixed, _ = flat_field(unmixed, None if flat is None else _label_flats(flat, matrix), estimate_flat)
+
+    def flattened(abundances):  # the same correction for every unmixing of this plane
+        if method == "none":
+            return abundances
+        return flat_field(abundances, None if flat is None else _label_flats(flat, matrix), estimate_flat)[0]
+
+    unmixed = flattened(unmixed)
 
     ka, kb = matrix.labels.index(a_label), matrix.labels.index(b_label)
     ca, cb = matrix.channels.index(matrix.primary[a_label]), matrix.channels.index(matrix.primary[b_label])
@@ -245,8 +250,8 @@ def analyse_pair(raw: np.ndarray, matrix: BleedThroughMatrix, pair: tuple[str, s
     rng = np.random.default_rng(seed)
     after_interval = None
     if matrix.ci95_low is not None and matrix_draws and after.pearson is not None:
-        values = [coloc.pearson(*Unmixer(_draw_matrix(matrix, rng)).unmix(raw, background)[[ka, kb]], region)
-                  for _ in range(matrix_draws)]
+        values = [coloc.pearson(*flattened(Unmixer(_draw_matrix(matrix, rng)).unmix(raw, background))[[ka, kb]],
+                                region) for _ in range(matrix_draws)]
         values = [v for v in values if v is not None]
         if values:
             after_interval = (float(np.percentile(values, 2.5)), float(np.percentile(values, 97.5)))
