@@ -60,7 +60,9 @@ def _screenshot(viewer, widget, name):
 
 def _measured(qtbot, viewer):
     widget = MeasureWidget(viewer)
-    widget.set_controls({label: f"control {label} 1" for label in ("Cobaltin", "Fernlight", "Emberin")})
+    # Both fields of each label, as two rows with the same label name.
+    widget.set_controls({label: [f"control {label} 1", f"control {label} 2"] for label in ("Cobaltin", "Fernlight",
+                                                                                           "Emberin")})
     widget.unstained.setCurrentText("unstained")
     widget.bootstrap.setValue(200)
     widget.measure()
@@ -76,8 +78,8 @@ def test_sample_data_and_plugin_manifest(viewer):
 
 def test_measure_widget_equals_the_library(qtbot, viewer, errors):
     widget = _measured(qtbot, viewer)
-    controls = {label: [layer_image(viewer.layers[f"control {label} 1"])] for label in ("Cobaltin", "Fernlight",
-                                                                                         "Emberin")}
+    controls = {label: [layer_image(viewer.layers[f"control {label} {field}"]) for field in (1, 2)]
+                for label in ("Cobaltin", "Fernlight", "Emberin")}
     reference = measure_matrix(controls, unstained=layer_image(viewer.layers["unstained"]),
                                settings=MeasureSettings(n_boot=200))
     np.testing.assert_allclose(widget.matrix.matrix, reference.matrix)

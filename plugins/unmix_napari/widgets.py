@@ -186,7 +186,8 @@ class MeasureWidget(QWidget):
         self.runner = _Worker()
         self.matrix = None
         layout = QVBoxLayout(self)
-        layout.addWidget(QLabel("Single-label controls: one label name and its control layer per row"))
+        layout.addWidget(QLabel("Single-label controls: a label name and a control layer per row "
+                                "(several rows with one label are several fields of it)"))
         self.rows_layout = QFormLayout()
         layout.addLayout(self.rows_layout)
         self.rows = []
@@ -228,10 +229,12 @@ class MeasureWidget(QWidget):
         self.rows.append((name, choice))
 
     def set_controls(self, controls: dict):
-        """Fill the rows: label -> control layer name (one layer per label)."""
-        while len(self.rows) < len(controls):
+        """Fill the rows: label -> control layer name, or a list of names (several fields)."""
+        pairs = [(label, layer) for label, layers in controls.items()
+                 for layer in ([layers] if isinstance(layers, str) else layers)]
+        while len(self.rows) < len(pairs):
             self.add_row()
-        for (name_edit, choice), (label, layer) in zip(self.rows, controls.items()):
+        for (name_edit, choice), (label, layer) in zip(self.rows, pairs):
             name_edit.setText(label)
             choice.setCurrentText(layer)
 
@@ -246,9 +249,12 @@ class MeasureWidget(QWidget):
                 continue
             if not label or layer is None:
                 raise ValueError("each control row needs both a label name and a control layer")
-            if label in controls:
-                raise ValueError(f"label {label!r} is given twice; give each label once")
-            controls[label] = [layer_image(layer)]
+            used = [other for other, fields in controls.items() if any(f.source == layer.name for f in fields)]
+            if used:
+                raise ValueError(f"layer {layer.name!r} is given twice (for {used[0]!r} and {label!r}); a control "
+                                 "field belongs to one label, once")
+            fields = controls.setdefault(label, [])
+            fields.append(layer_image(layer))  # rows with the same label are fields of one control
         if not controls:
             raise ValueError("choose at least one control layer and name its label")
         unstained = self.unstained.layer()
