@@ -380,3 +380,27 @@ def test_saturation_mask_at_the_contract_level(tmp_path, capsys, pile_up, contai
     np.testing.assert_array_equal(np.asarray(mask.data)[0], expected)
     manifest = json.loads((tmp_path / "out" / "unmix-manifest.json").read_text())
     assert next(iter(manifest["outputs"].values()))["saturated_pixels"] == int(expected.sum()) == 13
+
+
+@pytest.mark.slow
+def test_ome_zarr_tasks_store_blocks_locally_and_the_client_on_a_cluster(tmp_path, demo_matrix, capsys):
+    # Local threads: each task stores its chunk; on a cluster the submitting process does. Same output.
+    import zarr
+    from distributed import LocalCluster
+
+    from unmix.images import Image, write_ome_zarr
+
+    rng = np.random.default_rng(6)
+    data = rng.integers(90, 3000, size=(3, 5, 48, 40)).astype(np.uint16)  # C Z Y X
+    source = write_ome_zarr(tmp_path / "z.ome.zarr", Image(data, "CZYX", ("blue450", "green525", "orange600")))
+    assert _run(["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "local", "--quiet"], capsys)[0] == 0
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
+                      dashboard_address=None) as cluster:
+        code, _, err = _run(["apply", "--matrix", demo_matrix, source, "-o", tmp_path / "cluster", "--quiet",
+                             "--scheduler", cluster.scheduler_address], capsys)
+    assert code == 0, err
+    matrix = load_matrix(demo_matrix)
+    expected = Unmixer(matrix.matrix).unmix(data, matrix.background)
+    for folder in ("local", "cluster"):
+        stored = np.asarray(zarr.open_array(str(tmp_path / folder / "z.unmixed.ome.zarr" / "0"), mode="r")[...])
+        np.testing.assert_array_equal(stored, expected)

@@ -214,6 +214,21 @@ def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unm
     return abundances, mask, misfit, nan, peaks
 
 
+def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
+                           background, levels, residual: bool, destinations: dict):
+    """:func:`_unmix_block`, then store the block in its chunk of each output array (distinct
+    chunks: tasks write in parallel); returns the figures only, with the saturated count."""
+    import zarr
+
+    abundances, saturated, misfit, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key,
+                                                             unmixer, background, levels, residual)
+    zarr.open_array(destinations["unmixed"], mode="r+")[key] = abundances
+    zarr.open_array(destinations["saturation"], mode="r+")[key] = saturated[None]
+    if misfit is not None:
+        zarr.open_array(destinations["residual"], mode="r+")[key] = misfit[None]
+    return None, int(np.count_nonzero(saturated)), None, nan, peaks
+
+
 def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels):
     from .images import read_block
 
@@ -292,9 +307,9 @@ class _SeriesTally:
     saturated: int = 0
     peaks: list | None = None  # one ChannelPeak per channel
 
-    def add(self, nan: int, saturated: np.ndarray, peaks) -> None:
+    def add(self, nan: int, saturated: int, peaks) -> None:
         self.nan += nan
-        self.saturated += int(np.count_nonzero(saturated))
+        self.saturated += saturated
         self.peaks = list(peaks) if self.peaks is None else [a + b for a, b in zip(self.peaks, peaks)]
 
 
@@ -321,16 +336,19 @@ def _task_source(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settin
 
 
 def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, unmixer: Unmixer,
-                     settings: ApplySettings, compute, tally: _SeriesTally):
+                     settings: ApplySettings, compute, tally: _SeriesTally, destinations: dict | None = None):
     """Yield (key, abundances, saturation mask, misfit or None) per block of a series, in order.
 
     NaN and saturated pixel counts and the channel peaks are added to `tally`.
+    With `destinations` (kind -> path of an OME-Zarr array), each task stores
+    its block there itself, in parallel, and the arrays yielded are None.
     """
     source = _task_source(job, path, matrix, settings)
+    task, extra = (_unmix_block, ()) if destinations is None else (_unmix_block_into_zarr, (destinations,))
     for key, (abundances, saturated, misfit, nan, peaks) in _in_batches(
-            list(_block_keys(job.image)), settings.batch_blocks, _unmix_block,
-            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual), compute):
-        tally.add(nan, saturated, peaks)
+            list(_block_keys(job.image)), settings.batch_blocks, task,
+            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual, *extra), compute):
+        tally.add(nan, saturated if isinstance(saturated, int) else int(np.count_nonzero(saturated)), peaks)
         yield key, abundances, saturated, misfit
 
 
@@ -463,8 +481,13 @@ def _totals(tallies) -> dict:
 
 
 def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
-                        settings: ApplySettings, names: dict, compute) -> dict:
-    """OME-Zarr input gives OME-Zarr outputs: blocks computed in parallel batches, each stored in its chunk."""
+                        settings: ApplySettings, names: dict, compute, writes_in_tasks: bool = False) -> dict:
+    """OME-Zarr input gives OME-Zarr outputs: blocks computed in parallel batches, each stored in its chunk.
+
+    With `writes_in_tasks` (local threads) every task stores its own block, so the chunks are
+    written in parallel; on a cluster the submitting process stores them (the workers need not
+    see the output folder), overlapped with the computing of the next batch.
+    """
     import zarr
     from ome_zarr.writer import write_multiscales_metadata
 
@@ -473,8 +496,8 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
     channels = {"unmixed": list(matrix.labels), "saturation": ["saturated"], "residual": ["residual_rms"]}
     dtypes = {"unmixed": np.float32, "saturation": np.uint8, "residual": np.float32}
     with contextlib.ExitStack() as stack:
-        roots = {kind: zarr.open_group(str(stack.enter_context(atomic_output(names[kind]))), mode="w")
-                 for kind in kinds}
+        folders = {kind: stack.enter_context(atomic_output(names[kind])) for kind in kinds}
+        roots = {kind: zarr.open_group(str(folder), mode="w") for kind, folder in folders.items()}
         if len(jobs) > 1:
             for root in roots.values():
                 root.attrs["bioformats2raw.layout"] = 3
@@ -496,8 +519,13 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
                 _add_zarr_attrs(group, {"omero": {"channels": [{"label": n, "active": True} for n in channels[kind]]}})
                 group.attrs["unmix_provenance"] = job.provenance if kind == "unmixed" else {"of": names["unmixed"].name}
             tallies.append(tally := _SeriesTally())
+            destinations = None
+            if writes_in_tasks:
+                destinations = {kind: str(folders[kind] / ("" if len(jobs) == 1 else str(i)) / "0") for kind in kinds}
             for key, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings,
-                                                                       compute, tally):
+                                                                       compute, tally, destinations):
+                if destinations is not None:
+                    continue  # the task stored the block
                 arrays["unmixed"][key] = abundances
                 arrays["saturation"][key] = saturated[None]
                 if misfit is not None:
@@ -616,7 +644,8 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     results = []
     try:
         for path, stem in plan:
-            results.append(_apply_one(matrix, unmixer, matrix_sha, path, stem, outdir, settings, compute))
+            results.append(_apply_one(matrix, unmixer, matrix_sha, path, stem, outdir, settings, compute,
+                                      compute_is_local=client is None))
             if results[-1].status == "written":
                 _record(manifest_path, results[-1], matrix_sha, settings)
     finally:
@@ -665,11 +694,12 @@ def _manifest_lock(manifest_path: Path):
 
 
 def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path, settings: ApplySettings,
-               compute) -> FileResult:
+               compute, compute_is_local: bool = True) -> FileResult:
     names = _output_names(outdir, stem, is_zarr_path(path))
     try:
         with open_images(path, axes=settings.axes, channel_names=settings.channel_names) as images:
-            return _unmix_file(images, matrix, unmixer, matrix_sha, path, names, outdir, settings, compute)
+            return _unmix_file(images, matrix, unmixer, matrix_sha, path, names, outdir, settings, compute,
+                               compute_is_local)
     except InputError as exc:
         return FileResult(str(path), None, "failed", str(exc))
     except OSError as exc:
@@ -680,7 +710,7 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
 
 
 def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, names: dict, outdir: Path,
-                settings: ApplySettings, compute) -> FileResult:
+                settings: ApplySettings, compute, compute_is_local: bool) -> FileResult:
     fingerprint = input_fingerprint(path)
     if names["unmixed"].exists():
         try:
@@ -703,8 +733,11 @@ def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, na
                                _provisional_levels(matrix, image, settings.saturation),
                                _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series)))
     outdir.mkdir(parents=True, exist_ok=True)
-    write = _write_zarr_outputs if is_zarr_path(path) else _write_outputs
-    totals = write(jobs, matrix, unmixer, path, settings, names, compute)
+    if is_zarr_path(path):
+        totals = _write_zarr_outputs(jobs, matrix, unmixer, path, settings, names, compute,
+                                     writes_in_tasks=compute_is_local)
+    else:
+        totals = _write_outputs(jobs, matrix, unmixer, path, settings, names, compute)
     pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
                  for job in jobs)
     return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],
