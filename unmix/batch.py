@@ -5,8 +5,15 @@ holding all channels and the full Y-X plane; each block is read, unmixed and
 written in turn, so memory stays bounded by a few planes whatever the size of
 the stack. Blocks are computed by dask in batches (local threads, or a
 running dask.distributed scheduler), so reading, computing and writing of
-different blocks overlap. The tasks carry only file names and the solver,
-never open file handles, so they run on remote workers too.
+different blocks overlap: the next batch is computed while this one is
+written. The tasks carry only file names and the solver, never open file
+handles, so they run on remote workers too. TIFF blocks are read page by page
+(:func:`unmix.images.read_block`); OME-Zarr outputs are stored chunk by chunk
+by the tasks themselves on local threads (in parallel), and by the submitting
+process on a cluster (whose workers need not see the output folder). The
+saturation level of an input is found exactly from the peaks of every block;
+only when it is below the level the blocks were masked at are the masks made
+again in a second, reading-only pass.
 
 Outputs per input ``<name>`` in OUTDIR (see the command-line contract):
 
