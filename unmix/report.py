@@ -141,17 +141,9 @@ def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: Ble
     parts.append(f"<p>{_e(matrix.kind.capitalize())}: signal of each label (column) in each channel (row), "
                  "relative to its primary channel" + (", with 95 % intervals" if matrix.ci95_low is not None else "")
                  + ".</p>")
-    rows = []
-    for c, channel in enumerate(matrix.channels):
-        cells = [_e(channel)]
-        for k, label in enumerate(matrix.labels):
-            if matrix.primary[label] == channel:
-                cells.append("1 (primary)")
-            elif matrix.ci95_low is not None:
-                cells.append(f"{matrix.matrix[c, k]:.4f} [{matrix.ci95_low[c, k]:.4f}, {matrix.ci95_high[c, k]:.4f}]")
-            else:
-                cells.append(f"{matrix.matrix[c, k]:.4f}")
-        rows.append(cells)
+    from .summary import matrix_rows
+
+    rows = [[_e(cell) for cell in row] for row in matrix_rows(matrix)]
     parts.append(_table(["channel \\ label", *matrix.labels], rows))
     penalty = matrix.noise_penalty()
     parts.append(f"<p>Condition number {matrix.condition_number():.2f}. Noise penalty (factor on the noise "

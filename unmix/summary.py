@@ -14,11 +14,11 @@ def table(rows: list[list[str]]) -> str:
     return "\n".join(lines)
 
 
-def matrix_summary(matrix: BleedThroughMatrix) -> str:
-    """The matrix with its 95 % intervals, per-label counts and any QC flags."""
-    rows = [["channel \\ label", *matrix.labels]]
+def matrix_rows(matrix: BleedThroughMatrix) -> list[list[str]]:
+    """One row per channel: its name, then each label's coefficient with its 95 % interval."""
+    rows = []
     for c, channel in enumerate(matrix.channels):
-        cells = []
+        cells = [channel]
         for k, label in enumerate(matrix.labels):
             value = matrix.matrix[c, k]
             if matrix.primary[label] == channel:
@@ -27,7 +27,13 @@ def matrix_summary(matrix: BleedThroughMatrix) -> str:
                 cells.append(f"{value:.4f} [{matrix.ci95_low[c, k]:.4f}, {matrix.ci95_high[c, k]:.4f}]")
             else:
                 cells.append(f"{value:.4f}")
-        rows.append([channel, *cells])
+        rows.append(cells)
+    return rows
+
+
+def matrix_summary(matrix: BleedThroughMatrix) -> str:
+    """The matrix with its 95 % intervals, per-label counts and any QC flags."""
+    rows = [["channel \\ label", *matrix.labels], *matrix_rows(matrix)]
     parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel"
              + (", 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
     per_label = matrix.qc.get("labels", {})

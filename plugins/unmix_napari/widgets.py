@@ -21,6 +21,8 @@ from qtpy.QtCore import Qt
 from qtpy.QtWidgets import (QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit, QPlainTextEdit,
                             QPushButton, QSpinBox, QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
+from unmix.summary import matrix_rows
+
 from .io import CHANNEL_NAMES, MATRIX_METADATA
 
 NONE = "(none)"
@@ -160,21 +162,6 @@ def _table(widget: QTableWidget, header, rows) -> None:
     widget.resizeColumnsToContents()
 
 
-def _matrix_rows(matrix):
-    rows = []
-    for c, channel in enumerate(matrix.channels):
-        cells = [channel]
-        for k, label in enumerate(matrix.labels):
-            if matrix.primary[label] == channel:
-                cells.append("1 (primary)")
-            elif matrix.ci95_low is not None:
-                cells.append(f"{matrix.matrix[c, k]:.4f} [{matrix.ci95_low[c, k]:.4f}, {matrix.ci95_high[c, k]:.4f}]")
-            else:
-                cells.append(f"{matrix.matrix[c, k]:.4f}")
-        rows.append(cells)
-    return rows
-
-
 # --- Measure ------------------------------------------------------------------
 
 class MeasureWidget(QWidget):
@@ -274,7 +261,7 @@ class MeasureWidget(QWidget):
         matrix, messages = result
         self.matrix = matrix
         session(self.viewer).matrix = matrix
-        _table(self.table, ["channel \\ label", *matrix.labels], _matrix_rows(matrix))
+        _table(self.table, ["channel \\ label", *matrix.labels], matrix_rows(matrix))
         lines = [f"Condition number {matrix.condition_number():.2f}; noise penalty "
                  + ", ".join(f"{label} {p:.2f}" for label, p in zip(matrix.labels, matrix.noise_penalty()))]
         lines += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])] + [f"warning: {m}" for m in messages]
@@ -675,7 +662,7 @@ class PredictionWidget(QWidget):
             _table(self.table, ["channel", "label", "measured", "predicted", "ratio", "verdict"], rows)
             self.summary.setText(comparison.summary)
         else:
-            _table(self.table, ["channel \\ label", *prediction.matrix.labels], _matrix_rows(prediction.matrix))
+            _table(self.table, ["channel \\ label", *prediction.matrix.labels], matrix_rows(prediction.matrix))
             self.summary.setText("Predicted matrix (measure one to compare).")
         if self.canvas is not None:
             self.canvas_holder.removeWidget(self.canvas)
