@@ -32,7 +32,7 @@ an interval for the after-r.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -67,7 +67,6 @@ class PairResult:
     flat_field: str
     min_r: float
     alpha: float
-    extra: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """The contract's keys (pair, before, after, verdict) and the figures behind the verdict."""
@@ -83,7 +82,6 @@ class PairResult:
             "bleed_through_only_pearson": _listed(self.bleed_through_only_pearson),
             "difference_bound": self.difference_bound, "saturated_pixels": self.saturated_pixels,
             "pixels": self.pixels, "flat_field": self.flat_field, "min_r": self.min_r, "alpha": self.alpha,
-            **self.extra,
         }
 
 

@@ -507,7 +507,7 @@ class OverlapWidget(QWidget):
 
     @_guarded
     def compute(self):
-        from unmix.verdict import analyse_pair, pair_planes
+        from unmix.verdict import analyse_pair, pair_planes, unmix_plane
 
         shared = session(self.viewer)
         matrix = shared.matrix
@@ -542,8 +542,9 @@ class OverlapWidget(QWidget):
         rounds = self.rounds.value()
 
         def work():
-            result = analyse_pair(raw, matrix, pair, unmixed=unmixed, mask=mask, rounds=rounds)
-            planes = pair_planes(raw, matrix, pair, unmixed)
+            abundances = unmix_plane(raw, matrix) if unmixed is None else unmixed  # once, for both uses
+            result = analyse_pair(raw, matrix, pair, unmixed=abundances, mask=mask, rounds=rounds)
+            planes = pair_planes(raw, matrix, pair, abundances)
             keep = np.ones(raw.shape[1:], bool) if mask is None else mask
             return result, [p[keep] for p in planes]
 
