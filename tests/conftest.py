@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from unmix.demo import demo_inputs, load_scenario, simulate
-from unmix.images import Image, write_ome_tiff
+from unmix.io.images import Image, write_ome_tiff
 
 
 @pytest.fixture(scope="session")

@@ -12,10 +12,10 @@ import tifffile
 
 from conftest import fingerprint
 from unmix.cli import main
-from unmix.images import read_image, read_provenance
+from unmix.io.images import read_image, read_provenance
 from unmix.matrix import BleedThroughMatrix, load_matrix
-from unmix.measure import MeasureSettings, measure_files
-from unmix.solve import Unmixer
+from unmix.measure.controls import MeasureSettings, measure_files
+from unmix.engine.solver import Unmixer
 
 
 @pytest.fixture(scope="module")
@@ -196,7 +196,7 @@ def test_read_only_output_folder(tmp_path, demo, demo_matrix, capsys, monkeypatc
 
 def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monkeypatch):
     # Disk full, simulated: writing fails after the first plane; no file appears under a final name.
-    import unmix.batch as batch
+    import unmix.engine.batch as batch
 
     real = batch._planes_writer
 
@@ -221,7 +221,7 @@ def test_several_series_are_unmixed_series_by_series(tmp_path, demo_matrix, caps
     code, _, err = _run(["apply", "--matrix", demo_matrix, tmp_path / "multi.ome.tif", "-o", tmp_path / "out"],
                         capsys)
     assert code == 0, err
-    from unmix.images import read_images
+    from unmix.io.images import read_images
 
     outputs = read_images(tmp_path / "out" / "multi.unmixed.ome.tif")
     matrix = load_matrix(demo_matrix)
@@ -318,7 +318,7 @@ def test_ome_zarr_input_gives_ome_zarr_output(tmp_path, demo_matrix, capsys):
     from ome_zarr.io import parse_url
     from ome_zarr.reader import Reader
 
-    from unmix.images import Image, write_ome_zarr
+    from unmix.io.images import Image, write_ome_zarr
 
     rng = np.random.default_rng(6)
     data = rng.integers(90, 3000, size=(3, 2, 24, 30)).astype(np.uint16)  # C Z Y X
@@ -357,7 +357,7 @@ def test_background_estimated_or_from_a_dark_frame(choice, tmp_path, demo, demo_
 def test_saturation_mask_at_the_contract_level(tmp_path, capsys, pile_up, container):
     # Reference: numpy comparisons on the input at the level the contract's rule gives: the
     # matrix's 4095, or lower when the input itself piles up at 255 (an 8-bit converter).
-    from unmix.images import Image, write_ome_zarr
+    from unmix.io.images import Image, write_ome_zarr
 
     matrix = BleedThroughMatrix(kind="measured", channels=("a", "b"), labels=("P", "Q"), primary={"P": "a", "Q": "b"},
                                 matrix=np.array([[1.0, 0.2], [0.3, 1.0]]), background=np.array([10.0, 10.0]),
@@ -388,7 +388,7 @@ def test_ome_zarr_tasks_store_blocks_locally_and_the_client_on_a_cluster(tmp_pat
     import zarr
     from distributed import LocalCluster
 
-    from unmix.images import Image, write_ome_zarr
+    from unmix.io.images import Image, write_ome_zarr
 
     rng = np.random.default_rng(6)
     data = rng.integers(90, 3000, size=(3, 5, 48, 40)).astype(np.uint16)  # C Z Y X

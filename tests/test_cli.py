@@ -308,7 +308,7 @@ def test_real_process_exit_codes(files):
 
 def test_predict_compare_and_plan_from_the_command_line(tmp_path, capsys):
     # The shipped demo description, predicted, compared with itself as a "measured" matrix.
-    from unmix.shipped import shipped_dir
+    from unmix.io.shipped import shipped_dir
 
     description = shipped_dir("configs") / "demo_optics.toml"
     predicted = tmp_path / "predicted.json"

@@ -6,9 +6,7 @@ import numpy as np
 import pytest
 from scipy import ndimage, stats
 
-from unmix import coloc
-
-
+from unmix.coloc import statistics as coloc
 def _pair(seed, shape=(128, 128), shared=0.6, structure=4.0):
     """Two images sharing a fraction of blurred structure (invented test data)."""
     rng = np.random.default_rng(seed)

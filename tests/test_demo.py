@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from unmix.demo import generate, run_demo
-from unmix.images import read_image
+from unmix.io.images import read_image
 
 
 def test_generator_reproduces_the_shipped_stacks(tmp_path, demo):

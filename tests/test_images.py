@@ -9,7 +9,7 @@ import pytest
 import tifffile
 
 from unmix.errors import InputError
-from unmix.images import Image, read_image, read_images, read_provenance, write_ome_tiff, write_ome_zarr
+from unmix.io.images import Image, read_image, read_images, read_provenance, write_ome_tiff, write_ome_zarr
 
 
 @pytest.fixture
@@ -144,7 +144,7 @@ def test_read_block_equals_the_lazy_array(tmp_path, layout):
     # layouts that read_block maps to pages and for one it must hand to the lazy array (RGB).
     import tifffile
 
-    from unmix.images import close_block_sources, read_block
+    from unmix.io.images import close_block_sources, read_block
 
     rng = np.random.default_rng(1)
     path = tmp_path / "stack.tif"
@@ -184,7 +184,7 @@ def test_read_block_equals_the_lazy_array(tmp_path, layout):
 def test_read_block_sees_a_replaced_file(tmp_path):
     import tifffile
 
-    from unmix.images import close_block_sources, read_block
+    from unmix.io.images import close_block_sources, read_block
 
     path = tmp_path / "s.tif"
     tifffile.imwrite(path, np.zeros((2, 8, 8), np.uint16))

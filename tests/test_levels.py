@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from unmix.levels import saturation_level, summarise_channel
+from unmix.measure.levels import saturation_level, summarise_channel
 
 
 def _dark_frame(rng, offset=100.0, read_noise_adu=6.0, shape=(256, 256)):

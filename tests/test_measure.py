@@ -12,8 +12,8 @@ from scipy.ndimage import gaussian_filter
 
 from conftest import make_control
 from unmix.errors import InputError, InputWarning
-from unmix.images import Image
-from unmix.measure import MeasureSettings, measure_files, measure_matrix
+from unmix.io.images import Image
+from unmix.measure.controls import MeasureSettings, measure_files, measure_matrix
 
 FAST = MeasureSettings(n_boot=300)
 

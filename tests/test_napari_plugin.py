@@ -18,11 +18,14 @@ if not os.environ.get("CI"):  # in CI these tests must run: a missing napari or 
         pytest.skip("no screen: run under xvfb-run (./dev.sh test does)", allow_module_level=True)
 import napari  # noqa: E402
 
-from unmix.measure import MeasureSettings, measure_matrix  # noqa: E402
-from unmix.solve import Unmixer  # noqa: E402
-from unmix_napari import widgets  # noqa: E402
-from unmix_napari.widgets import (SESSION_MATRIX, MeasureWidget, OverlapWidget, PredictionWidget,  # noqa: E402
-                                  UnmixWidget, layer_image, session)
+from unmix.measure.controls import MeasureSettings, measure_matrix  # noqa: E402
+from unmix.engine.solver import Unmixer  # noqa: E402
+from unmix_napari import layers  # noqa: E402
+from unmix_napari.layers import SESSION_MATRIX, layer_image, session  # noqa: E402
+from unmix_napari.measure_widget import MeasureWidget  # noqa: E402
+from unmix_napari.overlap_widget import OverlapWidget  # noqa: E402
+from unmix_napari.prediction_widget import PredictionWidget  # noqa: E402
+from unmix_napari.unmix_widget import UnmixWidget  # noqa: E402
 
 ARTIFACTS = Path(__file__).parent / "artifacts"
 CONFIGS = Path(__file__).parent.parent / "configs"
@@ -33,7 +36,7 @@ WAIT_MS = 120_000
 def errors(monkeypatch):
     """Error notifications shown by the widgets."""
     shown = []
-    monkeypatch.setattr(widgets, "show_error", lambda message: shown.append(str(message)))
+    monkeypatch.setattr(layers, "show_error", lambda message: shown.append(str(message)))
     return shown
 
 
@@ -124,7 +127,7 @@ def test_unmix_and_overlap_widgets(qtbot, viewer, errors, tmp_path):
     _screenshot(viewer, overlap, "Overlap review")
 
     # The writer contribution: the unmixed layers as one OME-TIFF, channels named by label.
-    from unmix.images import read_image
+    from unmix.io.images import read_image
 
     viewer.layers.selection = {viewer.layers[f"{label} (unmixed)"] for label in matrix.labels}
     written = viewer.layers.save(str(tmp_path / "unmixed.ome.tif"), selected=True, plugin="unmix")

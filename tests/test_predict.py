@@ -9,12 +9,12 @@ import numpy as np
 import pytest
 from scipy import integrate
 
-from unmix import spectra
-from unmix.compare import compare
+from unmix.optics import spectra
+from unmix.optics.comparison import compare
 from unmix.errors import InputError
 from unmix.matrix import BleedThroughMatrix
-from unmix.optics import load_description
-from unmix.predict import predict, rank_setups
+from unmix.optics.description import load_description
+from unmix.optics.prediction import predict, rank_setups
 
 HEAD = '[description]\nformat = "unmix-description"\nversion = 1\nacquisition = "{mode}"\n'
 LABELS = '''
@@ -173,7 +173,7 @@ def _measured_from(prediction, relative_ci=0.05):
 def test_compare_agrees_with_itself_and_points_at_a_changed_filter():
     # Self-consistency (invented set-up): the "measured" matrix comes from the same optics
     # with the orange channel's real emission filter shifted to the red of its nominal one.
-    from unmix.optics import with_channel_parts
+    from unmix.optics.description import with_channel_parts
 
     demo = load_description(Path(__file__).parent.parent / "configs" / "demo_optics.toml")
     nominal = predict(demo)

@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 
 from conftest import fingerprint
 from unmix.errors import InputError
-from unmix.images import read_image, read_images, read_provenance
+from unmix.io.images import read_image, read_images, read_provenance
 from unmix.matrix import BleedThroughMatrix, load_matrix
 
 CHANNELS = ["blue450", "green525", "orange600"]
@@ -199,8 +199,8 @@ def _seed_files(folder: Path) -> dict:
 
 def read_with(kind: str, path: Path):
     """The reader of each kind of user file."""
-    from unmix.optics import load_description
-    from unmix.spectra import read_spectrum_csv
+    from unmix.optics.description import load_description
+    from unmix.optics.spectra import read_spectrum_csv
 
     if kind == "matrix":
         return load_matrix(path)
@@ -274,7 +274,7 @@ def test_output_folder_read_only_mid_batch_keeps_finished_files(tmp_path, monkey
     # EACCES; the first output stays, the second leaves nothing, one clear error line, exit 2.
     import errno
 
-    import unmix.batch as batch
+    import unmix.engine.batch as batch
     from unmix.cli import main
 
     matrix = _matrix(tmp_path)
@@ -306,7 +306,7 @@ def test_a_dask_worker_dying_mid_run_changes_nothing(tmp_path):
 
     from distributed import Client, LocalCluster
 
-    from unmix.batch import ApplySettings, apply_matrix
+    from unmix.engine.batch import ApplySettings, apply_matrix
 
     matrix = load_matrix(_matrix(tmp_path))
     inputs = _batch(tmp_path, files=2, planes=48, size=256)

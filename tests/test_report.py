@@ -14,7 +14,7 @@ import pytest
 
 from unmix.cli import main
 from unmix.matrix import BleedThroughMatrix
-from unmix.verdict import VERDICTS
+from unmix.coloc.verdict import VERDICTS
 
 ARTIFACTS = Path(__file__).parent / "artifacts"
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",

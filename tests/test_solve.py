@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.optimize import nnls
 
-from unmix.solve import Unmixer
+from unmix.engine.solver import Unmixer
 
 
 def _matrix_with_condition(rng, n_channels, n_labels, condition):
@@ -169,7 +169,6 @@ def test_unusable_matrices_refused(matrix, message):
 
 def test_generated_kernels_are_current():
     # The committed unrolled kernels must be what the generator writes now.
-    from unmix import solve_codegen
-
-    assert solve_codegen.TARGET.read_text(encoding="utf-8") == solve_codegen.source(), \
-        "run: python -m unmix.solve_codegen"
+    from unmix.engine import codegen
+    assert codegen.TARGET.read_text(encoding="utf-8") == codegen.source(), \
+        "run: python -m unmix.engine.codegen"

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import constants, integrate, stats
 
-from unmix import spectra
+from unmix.optics import spectra
 from unmix.errors import InputError
 
 NM = spectra.Grid(300.0, 1000.0, 0.05).nm

@@ -9,9 +9,9 @@ import pytest
 import tifffile
 
 from unmix.cli import main
-from unmix.coloc import Coefficients, pearson
-from unmix.solve import Unmixer
-from unmix.verdict import VERDICTS, analyse_pair, decide, noise_model
+from unmix.coloc.statistics import Coefficients, pearson
+from unmix.engine.solver import Unmixer
+from unmix.coloc.verdict import VERDICTS, analyse_pair, decide, noise_model
 
 
 def _c(r, p):
@@ -66,7 +66,7 @@ def test_noise_model_recovers_gain_and_read_noise():
 
 def test_demo_pairs_get_their_verdicts(demo, demo_matrix_file):
     # The invented demo is built with an independent-but-bleeding pair and a truly overlapping pair.
-    from unmix.images import read_image
+    from unmix.io.images import read_image
     from unmix.matrix import load_matrix
 
     matrix = load_matrix(demo_matrix_file)
@@ -83,7 +83,7 @@ def test_demo_pairs_get_their_verdicts(demo, demo_matrix_file):
 
 @pytest.fixture(scope="module")
 def demo_matrix_file(tmp_path_factory, demo):
-    from unmix.measure import MeasureSettings, measure_files
+    from unmix.measure.controls import MeasureSettings, measure_files
 
     path = tmp_path_factory.mktemp("matrix") / "m.json"
     measure_files(demo["controls"], unstained=demo["unstained"], settings=MeasureSettings(n_boot=200)).save(path)
@@ -91,7 +91,7 @@ def demo_matrix_file(tmp_path_factory, demo):
 
 
 def test_coloc_command_json_csv_and_objects(demo, demo_matrix_file, tmp_path, capsys):
-    from unmix.images import read_image
+    from unmix.io.images import read_image
 
     sample = demo["sample"]
     out = tmp_path / "c.json"
@@ -142,7 +142,7 @@ def test_constant_channel_is_reported_as_undefined(demo_matrix_file, tmp_path, c
 
 def test_label_names_cannot_escape_the_histogram_folder(tmp_path, capsys):
     # A label name from a user's matrix file becomes part of a file name only after sanitising.
-    from unmix.atomic import safe_file_name
+    from unmix.io.atomic import safe_file_name
     from unmix.matrix import BleedThroughMatrix
 
     assert safe_file_name("../../etc/passwd") == "_.._etc_passwd"

@@ -1,51 +1,44 @@
-"""Measure, predict and remove fluorescence bleed-through.
+"""Measure, predict and remove fluorescence bleed-through; judge colocalization before and after.
 
-The public API is imported lazily, so that the command line starts fast and
-pays only for the libraries a subcommand uses::
+The pipeline, one sub-package per stage (data flows one way)::
+
+    io -> measure -> engine -> coloc -> report -> cli, demo (and the napari plugin)
+          optics (beside measure: the matrix predicted from spectra and optics)
+
+:mod:`unmix.matrix` (the bleed-through matrix) and :mod:`unmix.errors` are
+shared by every stage. The public API is imported lazily, so that the command
+line starts fast and pays only for the libraries a subcommand uses::
 
     import unmix
     matrix = unmix.measure_files({"LabelA": ["a.ome.tif"], "LabelB": ["b.ome.tif"]})
     matrix.save("matrix.json")
 """
 
-from importlib import import_module
-
+from ._lazy import lazy_exports
 from ._version import __version__
 
-_EXPORTS = {
-    "Image": "images",
-    "read_image": "images",
-    "read_images": "images",
-    "write_ome_tiff": "images",
-    "write_ome_zarr": "images",
+__getattr__, __dir__, _names = lazy_exports(__name__, {
+    "Image": "io.images",
+    "read_image": "io.images",
+    "read_images": "io.images",
+    "write_ome_tiff": "io.images",
+    "write_ome_zarr": "io.images",
     "BleedThroughMatrix": "matrix",
     "load_matrix": "matrix",
-    "MeasureSettings": "measure",
-    "measure_matrix": "measure",
-    "measure_files": "measure",
-    "Unmixer": "solve",
-    "apply_matrix": "batch",
-    "ApplySettings": "batch",
-    "load_description": "optics",
-    "Description": "optics",
-    "predict": "predict",
-    "rank_setups": "predict",
-    "compare": "compare",
+    "MeasureSettings": "measure.controls",
+    "measure_matrix": "measure.controls",
+    "measure_files": "measure.controls",
+    "Unmixer": "engine.solver",
+    "apply_matrix": "engine.batch",
+    "ApplySettings": "engine.batch",
+    "load_description": "optics.description",
+    "Description": "optics.description",
+    "predict": "optics.prediction",
+    "rank_setups": "optics.prediction",
+    "compare": "optics.comparison",
+    "analyse_pair": "coloc.verdict",
     "InputError": "errors",
     "InputWarning": "errors",
-    "run_demo": "demo",
-}
-
-__all__ = ["__version__", *_EXPORTS]
-
-
-def __getattr__(name):
-    if name in _EXPORTS:
-        value = getattr(import_module(f".{_EXPORTS[name]}", __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module 'unmix' has no attribute {name!r}")
-
-
-def __dir__():
-    return sorted(__all__)
+    "run_demo": "demo.runner",
+})
+__all__ = ["__version__", *_names]

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .atomic import write_text_atomic
+from .io.atomic import write_text_atomic
 from .errors import InputError, read_user_text
 
 FORMAT = "unmix-matrix"

@@ -1,15 +1,20 @@
 """napari plugin for reviewing bleed-through: measure, unmix and judge overlap on screen.
 
-The widgets only translate between napari layers and the :mod:`unmix`
-library; all computation lives in the library and runs in thread workers.
+One module per dock widget (``measure_widget``, ``unmix_widget``,
+``overlap_widget``, ``prediction_widget``); what they share is in ``layers``;
+the reader, writer and sample data are in ``io``. The widgets only translate
+between napari layers and the :mod:`unmix` library; all computation lives in
+the library and runs in thread workers.
 """
 
-__all__ = ["MeasureWidget", "UnmixWidget", "OverlapWidget", "PredictionWidget"]
+_WIDGETS = {"MeasureWidget": "measure_widget", "UnmixWidget": "unmix_widget",
+            "OverlapWidget": "overlap_widget", "PredictionWidget": "prediction_widget"}
+__all__ = list(_WIDGETS)
 
 
 def __getattr__(name):
-    if name in __all__:
-        from . import widgets
+    if name in _WIDGETS:
+        from importlib import import_module
 
-        return getattr(widgets, name)
+        return getattr(import_module(f".{_WIDGETS[name]}", __name__), name)
     raise AttributeError(name)

@@ -37,7 +37,7 @@ def _read_matrix(path):
 
 def write_unmixed(path, layer_data):
     """Save image layers (the unmixed labels, one channel each) as one OME-TIFF with provenance."""
-    from unmix.images import Image, write_ome_tiff
+    from unmix.io.images import Image, write_ome_tiff
 
     data = np.stack([np.asarray(data, dtype=np.float32) for data, _, _ in layer_data])
     names = tuple(meta.get("name", f"label{i}") for i, (_, meta, _) in enumerate(layer_data))
@@ -54,7 +54,7 @@ def write_unmixed(path, layer_data):
 def demo_layers():
     """The demo scenario: each control, the unstained specimen and the sample as multichannel layers."""
     from unmix.demo import demo_inputs
-    from unmix.images import read_image
+    from unmix.io.images import read_image
 
     inputs = demo_inputs()
     layers = []

@@ -20,8 +20,7 @@ from timing import best_of
 def main():
     from scipy import ndimage
 
-    from unmix import coloc
-
+    from unmix.coloc import statistics as coloc
     parser = argparse.ArgumentParser()
     parser.add_argument("--size", type=int, default=2048)
     parser.add_argument("--rounds", type=int, default=200)

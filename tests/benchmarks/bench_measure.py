@@ -62,8 +62,8 @@ def peak_memory_child(controls_json: str) -> None:
     """
     import tifffile  # noqa: F401
 
-    from unmix.images import Image
-    from unmix.measure import MeasureSettings, measure_files, measure_matrix
+    from unmix.io.images import Image
+    from unmix.measure.controls import MeasureSettings, measure_files, measure_matrix
 
     rng = np.random.default_rng(1)
     tiny = np.zeros((4, 64, 64))
@@ -87,7 +87,7 @@ def main() -> None:
         return
     import tifffile
 
-    from unmix.measure import measure_files
+    from unmix.measure.controls import measure_files
 
     with tempfile.TemporaryDirectory() as tmp:
         controls = make_controls(Path(tmp), args.size)

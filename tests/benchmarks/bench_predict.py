@@ -34,9 +34,9 @@ def description_text(n_labels: int = 8, n_channels: int = 32) -> str:
 
 
 def main():
-    from unmix.optics import load_description
-    from unmix.predict import predict
-    from unmix.spectra import Grid
+    from unmix.optics.description import load_description
+    from unmix.optics.prediction import predict
+    from unmix.optics.spectra import Grid
 
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "spectral.toml"

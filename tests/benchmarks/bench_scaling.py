@@ -19,7 +19,7 @@ UNMIX_REPEATS = 8
 
 
 def kernel_task(seed: int, megapixels: float) -> float:
-    from unmix.solve import Unmixer
+    from unmix.engine.solver import Unmixer
 
     rng = np.random.default_rng(seed)
     matrix = np.array([[1.0, 0.3, 0.02], [0.12, 1.0, 0.35], [0.0, 0.04, 1.0], [0.05, 0.2, 0.5]])

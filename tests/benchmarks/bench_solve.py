@@ -17,7 +17,7 @@ import numpy as np
 from timing import best_of
 from scipy.optimize import nnls
 
-from unmix.solve import Unmixer
+from unmix.engine.solver import Unmixer
 from unmix.threads import THREADS
 
 

@@ -1,0 +1,134 @@
+"""The Measure dock widget: control layers -> the bleed-through matrix."""
+
+from __future__ import annotations
+
+import warnings
+
+from napari.utils.notifications import show_info
+from qtpy.QtWidgets import (QFileDialog, QFormLayout, QLabel, QLineEdit, QPlainTextEdit, QPushButton, QSpinBox,
+                            QTableWidget, QVBoxLayout, QWidget)
+
+from unmix.report.summary import matrix_rows
+
+from .layers import LayerChoice, Worker, fill_table, guarded, layer_image, notify_error, session
+
+
+class MeasureWidget(QWidget):
+    """Pick a control layer per label (and an unstained or dark layer), measure, review, save."""
+
+    def __init__(self, napari_viewer):
+        super().__init__()
+        self.viewer = napari_viewer
+        self.runner = Worker()
+        self.matrix = None
+        layout = QVBoxLayout(self)
+        layout.addWidget(QLabel("Single-label controls: a label name and a control layer per row "
+                                "(several rows with one label are several fields of it)"))
+        self.rows_layout = QFormLayout()
+        layout.addLayout(self.rows_layout)
+        self.rows = []
+        for _ in range(3):
+            self.add_row()
+        more = QPushButton("Add a label")
+        more.clicked.connect(lambda *_: self.add_row())
+        layout.addWidget(more)
+        references = QFormLayout()
+        self.unstained = LayerChoice(napari_viewer, optional=True)
+        self.dark = LayerChoice(napari_viewer, optional=True)
+        self.bootstrap = QSpinBox()
+        self.bootstrap.setRange(100, 10000)
+        self.bootstrap.setValue(1000)
+        references.addRow("Unstained specimen", self.unstained)
+        references.addRow("Dark frame", self.dark)
+        references.addRow("Bootstrap replicates", self.bootstrap)
+        layout.addLayout(references)
+        self.measure_button = QPushButton("Measure the bleed-through matrix")
+        self.measure_button.clicked.connect(self.measure)
+        layout.addWidget(self.measure_button)
+        self.table = QTableWidget()
+        layout.addWidget(self.table)
+        self.messages = QPlainTextEdit()
+        self.messages.setReadOnly(True)
+        self.messages.setMaximumHeight(110)
+        layout.addWidget(self.messages)
+        save = QPushButton("Save the matrix file…")
+        save.clicked.connect(self._ask_save)
+        layout.addWidget(save)
+
+    def add_row(self, label: str = "", layer: str | None = None):
+        name = QLineEdit(label)
+        name.setPlaceholderText("label name")
+        choice = LayerChoice(self.viewer, optional=True)
+        if layer:
+            choice.setCurrentText(layer)
+        self.rows_layout.addRow(name, choice)
+        self.rows.append((name, choice))
+
+    def set_controls(self, controls: dict):
+        """Fill the rows: label -> control layer name, or a list of names (several fields)."""
+        pairs = [(label, layer) for label, layers in controls.items()
+                 for layer in ([layers] if isinstance(layers, str) else layers)]
+        while len(self.rows) < len(pairs):
+            self.add_row()
+        for (name_edit, choice), (label, layer) in zip(self.rows, pairs):
+            name_edit.setText(label)
+            choice.setCurrentText(layer)
+
+    @guarded
+    def measure(self):
+        from unmix.measure.controls import MeasureSettings, measure_matrix
+
+        controls = {}
+        for name_edit, choice in self.rows:
+            label, layer = name_edit.text().strip(), choice.layer()
+            if not label and layer is None:
+                continue
+            if not label or layer is None:
+                raise ValueError("each control row needs both a label name and a control layer")
+            used = [other for other, fields in controls.items() if any(f.source == layer.name for f in fields)]
+            if used:
+                raise ValueError(f"layer {layer.name!r} is given twice (for {used[0]!r} and {label!r}); a control "
+                                 "field belongs to one label, once")
+            fields = controls.setdefault(label, [])
+            fields.append(layer_image(layer))  # rows with the same label are fields of one control
+        if not controls:
+            raise ValueError("choose at least one control layer and name its label")
+        unstained = self.unstained.layer()
+        dark = self.dark.layer()
+        settings = MeasureSettings(n_boot=self.bootstrap.value())
+
+        def work():
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                matrix = measure_matrix(controls, unstained=layer_image(unstained) if unstained else None,
+                                        dark=layer_image(dark) if dark else None, settings=settings)
+            return matrix, [str(w.message) for w in caught if issubclass(w.category, UserWarning)]
+
+        self.runner.start(work, self._show, "Measuring bleed-through")
+
+    def _show(self, result):
+        matrix, messages = result
+        self.matrix = matrix
+        session(self.viewer).matrix = matrix
+        fill_table(self.table, ["channel \\ label", *matrix.labels], matrix_rows(matrix))
+        lines = [f"Condition number {matrix.condition_number():.2f}; noise penalty "
+                 + ", ".join(f"{label} {p:.2f}" for label, p in zip(matrix.labels, matrix.noise_penalty()))]
+        lines += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])] + [f"warning: {m}" for m in messages]
+        self.messages.setPlainText("\n".join(lines))
+        show_info("bleed-through matrix measured; the Unmix and Overlap widgets use it")
+
+    def _ask_save(self, *_):
+        path, _ = QFileDialog.getSaveFileName(self, "Save the matrix file", "matrix.json", "Matrix (*.json)")
+        if path:
+            self.save(path)
+
+    def save(self, path):
+        """Write the measured matrix file (JSON) to `path`; a notification if there is none."""
+        try:
+            if self.matrix is None:
+                raise ValueError("no matrix yet: measure one first")
+            self.matrix.save(path)
+            show_info(f"wrote {path}")
+        except Exception as exc:  # noqa: BLE001 - the viewer must keep working
+            notify_error(exc)
+

@@ -1,0 +1,164 @@
+"""The Overlap review dock widget: colocalization before and after unmixing, with the verdict."""
+
+from __future__ import annotations
+
+import numpy as np
+from napari.layers import Image as ImageLayer
+from napari.layers import Labels as LabelsLayer
+from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout, QWidget
+
+from .layers import NONE, VERDICT_LOOK, LayerChoice, Worker, fill_table, guarded, layer_image, session
+
+
+class OverlapWidget(QWidget):
+    """Two labels: coefficients before and after unmixing side by side, the verdict, the histograms."""
+
+    def __init__(self, napari_viewer):
+        super().__init__()
+        self.viewer = napari_viewer
+        self.runner = Worker()
+        self.result = None
+        self._watched = None
+        self.setMinimumWidth(600)
+        layout = QVBoxLayout(self)
+        form = QFormLayout()
+        self.label_a, self.label_b = QComboBox(), QComboBox()
+        self.raw = LayerChoice(napari_viewer)
+        self.mask = LayerChoice(napari_viewer, types=(LabelsLayer, ImageLayer), optional=True)
+        self.rounds = QSpinBox()
+        self.rounds.setRange(19, 9999)
+        self.rounds.setValue(200)
+        form.addRow("Label A", self.label_a)
+        form.addRow("Label B", self.label_b)
+        form.addRow("Raw image layer", self.raw)
+        form.addRow("Mask (optional)", self.mask)
+        form.addRow("Randomisation rounds", self.rounds)
+        layout.addLayout(form)
+        refresh = QPushButton("Use the labels of the current matrix")
+        refresh.clicked.connect(lambda *_: self.refresh_labels())
+        layout.addWidget(refresh)
+        self.button = QPushButton("Measure overlap before and after")
+        self.button.clicked.connect(self.compute)
+        layout.addWidget(self.button)
+        self.verdict = QLabel("")
+        self.verdict.setWordWrap(True)
+        self.verdict.setMargin(6)
+        layout.addWidget(self.verdict)
+        self.table = QTableWidget()
+        layout.addWidget(self.table)
+        self.canvas_holder = QVBoxLayout()
+        layout.addLayout(self.canvas_holder)
+        self.canvas = None
+        self.mask.currentTextChanged.connect(self._watch_mask)
+        self.refresh_labels()
+
+    def refresh_labels(self):
+        matrix = session(self.viewer).matrix
+        labels = list(matrix.labels) if matrix is not None else []
+        for combo, default in ((self.label_a, 0), (self.label_b, 1)):
+            current = combo.currentText()
+            combo.clear()
+            combo.addItems(labels)
+            if current in labels:
+                combo.setCurrentText(current)
+            elif len(labels) > default:
+                combo.setCurrentIndex(default)
+
+    def _watch_mask(self, *_):
+        """Recompute when the user edits the mask (painting a labels layer, or new data)."""
+        if self._watched is not None:
+            for event in ("data", "paint"):
+                if hasattr(self._watched.events, event):
+                    getattr(self._watched.events, event).disconnect(self._mask_edited)
+        layer = self.mask.layer() if self.mask.currentText() != NONE else None
+        self._watched = layer
+        if layer is not None:
+            for event in ("data", "paint"):
+                if hasattr(layer.events, event):
+                    getattr(layer.events, event).connect(self._mask_edited)
+
+    def _mask_edited(self, *_):
+        if self.result is not None and not self.runner.busy:
+            self.compute()
+
+    @guarded
+    def compute(self):
+        from unmix.coloc.verdict import analyse_pair, pair_planes, unmix_plane
+
+        shared = session(self.viewer)
+        matrix = shared.matrix
+        if matrix is None:
+            raise ValueError("no matrix yet: measure one (Measure widget) or unmix with a matrix file first")
+        pair = (self.label_a.currentText(), self.label_b.currentText())
+        if not all(pair) or pair[0] == pair[1]:
+            raise ValueError("choose two different labels")
+        raw_layer = self.raw.layer()
+        if raw_layer is None:
+            raise ValueError("choose the raw multichannel image layer")
+        image = layer_image(raw_layer)
+        missing = [c for c in matrix.channels if c not in image.channel_names]
+        if missing:
+            raise ValueError(f"layer {raw_layer.name!r} lacks channels {missing} of the matrix")
+        raw = np.asarray(image.select_channels(matrix.channels).data)
+        if raw.ndim != 3:
+            raise ValueError(f"layer {raw_layer.name!r} is not one plane (C, Y, X); overlap is measured per plane")
+        unmixed = None
+        if shared.raw_layer == raw_layer.name and all(label in shared.unmixed for label in matrix.labels) and all(
+                shared.unmixed[label] in self.viewer.layers for label in matrix.labels):
+            unmixed = np.stack([np.asarray(self.viewer.layers[shared.unmixed[label]].data) for label in matrix.labels])
+        mask_layer = self.mask.layer()
+        mask = None
+        if mask_layer is not None:
+            mask = np.asarray(mask_layer.data) > 0
+            if mask.shape != raw.shape[1:]:
+                raise ValueError(f"mask {mask_layer.name!r} has shape {mask.shape}, the image {raw.shape[1:]}; "
+                                 "draw the mask on the same plane")
+            if not mask.any():
+                raise ValueError(f"mask {mask_layer.name!r} selects no pixel; paint some first")
+        rounds = self.rounds.value()
+
+        def work():
+            abundances = unmix_plane(raw, matrix) if unmixed is None else unmixed  # once, for both uses
+            result = analyse_pair(raw, matrix, pair, unmixed=abundances, mask=mask, rounds=rounds)
+            planes = pair_planes(raw, matrix, pair, abundances)
+            keep = np.ones(raw.shape[1:], bool) if mask is None else mask
+            return result, [p[keep] for p in planes]
+
+        self.runner.start(work, self._show, "Measuring overlap")
+
+    def _show(self, payload):
+        from matplotlib.backends.backend_qtagg import FigureCanvasQTAgg
+
+        from unmix.coloc.verdict import VERDICTS
+        from unmix.report.plots import coloc_histograms
+
+        result, planes = payload
+        self.result = result
+        symbol, colour = VERDICT_LOOK[result.verdict]
+        self.verdict.setText(f"{symbol}  {result.verdict}: {VERDICTS[result.verdict]}")
+        self.verdict.setStyleSheet(f"background-color: {colour}; color: black; font-weight: bold; "
+                                   "border: 1px solid #333;")
+
+        def value(x, digits=3):
+            return "undefined" if x is None else f"{x:.{digits}f}"
+
+        rows = []
+        for key, name in (("pearson", "Pearson r"), ("p_value", "p (randomisation)"), ("spearman", "Spearman rho"),
+                          ("manders_m1", "Manders M1"), ("manders_m2", "Manders M2"), ("overlap", "Manders overlap"),
+                          ("icq", "Li's ICQ")):
+            rows.append([name, value(getattr(result.before, key)), value(getattr(result.after, key))])
+        if result.after_pearson_interval:
+            low, high = result.after_pearson_interval
+            rows.append(["after r, matrix 95 %", "", f"{low:.3f} to {high:.3f}"])
+        if result.bleed_through_only_pearson:
+            rows.append(["before r from bleed-through alone", f"{result.bleed_through_only_pearson[0]:.3f}", ""])
+        rows.append(["pixels (saturated left out)", f"{result.pixels} ({result.saturated_pixels})", ""])
+        fill_table(self.table, ["", "before", "after"], rows)
+        figure = coloc_histograms((planes[0], planes[1]), (planes[2], planes[3]), result)
+        if self.canvas is not None:
+            self.canvas_holder.removeWidget(self.canvas)
+            self.canvas.deleteLater()
+        self.canvas = FigureCanvasQTAgg(figure)
+        self.canvas.setMinimumHeight(300)
+        self.canvas_holder.addWidget(self.canvas)
+

@@ -1,0 +1,37 @@
+"""``unmix report``: one self-contained HTML report."""
+
+from __future__ import annotations
+
+from ..errors import InputError
+from .args import check_output
+
+
+def add_parsers(sub, common) -> None:
+    """Add the subcommand to the parser."""
+    report = sub.add_parser("report", parents=[common], help="one self-contained HTML report",
+                            description="Write one self-contained HTML report: the matrix, measured versus "
+                                        "predicted, and colocalization verdicts.")
+    report.add_argument("--matrix", required=True, metavar="MATRIX.json")
+    report.add_argument("--predicted", metavar="PREDICTED.json", help="add measured versus predicted")
+    report.add_argument("--coloc", action="append", metavar="COLOC.json", help="results of unmix coloc --json")
+    report.add_argument("-o", "--output", required=True, metavar="REPORT.html")
+    report.set_defaults(run=run_report)
+
+
+def run_report(args) -> int:
+    from ..matrix import load_matrix
+    from ..report.html import build_report, load_coloc_results, write_report
+
+    inputs = [args.matrix] + ([args.predicted] if args.predicted else []) + list(args.coloc or [])
+    output = check_output(args.output, inputs)
+    if not output.name.lower().endswith((".html", ".htm")):
+        raise InputError(f"-o {args.output}: the report is HTML; give a name ending in .html")
+    matrix = load_matrix(args.matrix)
+    predicted = load_matrix(args.predicted) if args.predicted else None
+    records = [record for path in args.coloc or [] for record in load_coloc_results(path)]
+    write_report(output, build_report(matrix, matrix_path=args.matrix, predicted=predicted,
+                                      predicted_path=args.predicted, coloc_records=records))
+    if not args.quiet:
+        print(f"wrote {output}")
+    return 0
+

@@ -1,0 +1,16 @@
+"""Raw image + matrix -> colocalization before and after unmixing, and a verdict.
+
+In: a raw multichannel image, its matrix and a pair of labels. Out:
+coefficients (Pearson, Spearman, Manders, Li's ICQ, Costes thresholds,
+randomisation p-values; :mod:`.statistics`) before and after unmixing,
+and the verdict built on them (:mod:`.verdict`).
+"""
+
+from .._lazy import lazy_exports
+
+__getattr__, __dir__, __all__ = lazy_exports(__name__, {
+    "Coefficients": "statistics",
+    "PairResult": "verdict",
+    "analyse_pair": "verdict",
+    "VERDICTS": "verdict",
+})

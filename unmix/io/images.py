@@ -1,0 +1,664 @@
+"""Reading and writing multichannel images: TIFF, OME-TIFF and OME-Zarr.
+
+Every image is handed around as an :class:`Image`: the pixel array (numpy, or
+dask for lazy reading), its axes in the canonical order ``TCZYX`` (only the
+axes present, ``C``, ``Y`` and ``X`` always), the channel names, the physical
+pixel sizes and where it came from. Readers put the axes into that order, so
+no other module needs to know how a file stored them.
+
+Axis rules (the command line's contract): axes come from OME or hyperstack
+metadata when the file has them; a file without axis metadata is read as
+``CYX`` when it is 3-D and ``YX`` when it is 2-D; anything else needs an
+explicit `axes` argument (``--axes`` on the command line). Channel names come
+from the metadata, else ``ch0``, ``ch1``, ...; `channel_names` overrides them.
+
+Lazy reading goes through ``tifffile``'s zarr view of a TIFF series (read
+plane by plane on demand, so a file larger than memory can be streamed) and
+through ``zarr`` for OME-Zarr (NGFF 0.4 and 0.5 metadata).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import logging
+import threading
+import xml.etree.ElementTree as ElementTree
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+
+from .atomic import atomic_output
+from ..errors import InputError
+
+CANONICAL_AXES = "TCZYX"
+TIFF_SUFFIXES = (".ome.tif", ".ome.tiff", ".tif", ".tiff")
+ZARR_SUFFIXES = (".ome.zarr", ".zarr")
+# Multi-dimensional shapes declared in a file are checked against this many
+# pixels before anything is allocated, so that a tiny damaged file cannot
+# ask for terabytes (common practice for defensive readers).
+MAX_PIXELS = 2**40
+
+
+@dataclass(frozen=True)
+class Image:
+    """A multichannel image with its axes and channel names.
+
+    Attributes
+    ----------
+    data : array-like
+        numpy or dask array with axes `axes`.
+    axes : str
+        Axis letters in canonical order, a subsequence of ``"TCZYX"`` that
+        always holds ``C``, ``Y`` and ``X``.
+    channel_names : tuple of str
+        One name per channel, unique.
+    pixel_size : dict
+        Physical size per axis letter (``"X"``, ``"Y"``, ``"Z"``) in
+        micrometres, where the file gives it.
+    source : str or None
+        The file the image was read from.
+    series : int
+        Index of the series (position) within that file.
+    """
+
+    data: Any
+    axes: str
+    channel_names: tuple[str, ...]
+    pixel_size: dict = field(default_factory=dict)
+    source: str | None = None
+    series: int = 0
+
+    def __post_init__(self):
+        check_axes(self.axes, "axes")
+        if len(self.axes) != self.data.ndim:
+            raise ValueError(f"axes {self.axes!r} do not match data with {self.data.ndim} dimensions")
+        if len(self.channel_names) != self.n_channels:
+            raise ValueError(
+                f"channel_names has {len(self.channel_names)} names for {self.n_channels} channels"
+            )
+        if len(set(self.channel_names)) != len(self.channel_names):
+            raise ValueError(f"channel_names are not unique: {list(self.channel_names)}")
+
+    @property
+    def n_channels(self) -> int:
+        return int(self.data.shape[self.axes.index("C")])
+
+    @property
+    def channel_axis(self) -> int:
+        return self.axes.index("C")
+
+    @property
+    def name(self) -> str:
+        """A short description for messages: the file, and the series if not the first."""
+        where = self.source or "<array>"
+        return where if self.series == 0 else f"{where} (series {self.series})"
+
+    def channel(self, name: str):
+        """The pixels of channel `name`, C axis removed."""
+        index = self.channel_names.index(name)
+        return self.data[(slice(None),) * self.channel_axis + (index,)]
+
+    def select_channels(self, names: Sequence[str]) -> "Image":
+        """A view with the channels `names`, in that order."""
+        indices = [self.channel_names.index(n) for n in names]
+        key = (slice(None),) * self.channel_axis + (indices,)
+        return replace(self, data=self.data[key], channel_names=tuple(names))
+
+    def compute(self) -> "Image":
+        """The same image with its pixels in memory as a numpy array."""
+        if isinstance(self.data, np.ndarray):
+            return self
+        return replace(self, data=np.asarray(self.data))
+
+
+def check_axes(axes: str, what: str) -> str:
+    """Validate an axis string: letters of TCZYX, each once, with C, Y, X."""
+    if not isinstance(axes, str) or not axes:
+        raise ValueError(f"{what} must be a non-empty string of axis letters")
+    axes = axes.upper()
+    bad = set(axes) - set(CANONICAL_AXES)
+    if bad or len(set(axes)) != len(axes) or not {"Y", "X"} <= set(axes):
+        raise ValueError(
+            f"{what} {axes!r} is not valid: use each of T, C, Z, Y, X at most once, Y and X required"
+        )
+    return axes
+
+
+def to_canonical(data, axes: str):
+    """Transpose `data` with `axes` to canonical order, adding a C axis if missing."""
+    axes = check_axes(axes, "axes")
+    if "C" not in axes:
+        data = data[None]
+        axes = "C" + axes
+    order = [axes.index(a) for a in CANONICAL_AXES if a in axes]
+    canonical = "".join(axes[i] for i in order)
+    if order != list(range(len(order))):
+        data = data.transpose(order)
+    return data, canonical
+
+
+def _default_channel_names(n: int) -> tuple[str, ...]:
+    return tuple(f"ch{i}" for i in range(n))
+
+
+def _apply_overrides(image: Image, channel_names: Sequence[str] | None) -> Image:
+    if channel_names is None:
+        return image
+    names = tuple(str(n).strip() for n in channel_names)
+    if len(names) != image.n_channels:
+        raise InputError(
+            f"{image.name}: --channel-names gives {len(names)} names but the image has "
+            f"{image.n_channels} channels; give exactly one name per channel"
+        )
+    if len(set(names)) != len(names) or any(not n for n in names):
+        raise InputError(f"{image.name}: --channel-names must be unique and non-empty; got {list(names)}")
+    return replace(image, channel_names=names)
+
+
+def is_zarr_path(path: Path) -> bool:
+    return path.name.lower().endswith(ZARR_SUFFIXES) or (path.is_dir() and (
+        (path / ".zattrs").exists() or (path / "zarr.json").exists()))
+
+
+def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
+                lazy: bool = False, _open_files: list | None = None) -> list[Image]:
+    """Read every series (position) of a TIFF, OME-TIFF or OME-Zarr file.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file (TIFF) or folder (OME-Zarr).
+    axes : str, optional
+        Axis letters of the stored array (e.g. ``"ZCYX"``), overriding the
+        metadata; needed for files without axis metadata that are not 2-D or 3-D.
+    channel_names : sequence of str, optional
+        Overrides the channel names of the metadata.
+    lazy : bool
+        Return dask arrays read on demand instead of numpy arrays.
+
+    Returns
+    -------
+    list of Image
+
+    Raises
+    ------
+    InputError
+        For a missing, unreadable or unsupported file, naming it.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such file; check the path")
+    if axes is not None:
+        try:
+            axes = check_axes(axes, "--axes")
+        except ValueError as exc:
+            raise InputError(f"{path}: {exc}") from None
+    if is_zarr_path(path):
+        images = _read_zarr(path, axes, lazy)
+    elif path.is_dir():
+        raise InputError(f"{path}: is a folder but not an OME-Zarr image; give a TIFF file or an OME-Zarr folder")
+    else:
+        images = _read_tiff(path, axes, lazy, _open_files)
+    return [_apply_overrides(im, channel_names) for im in images]
+
+
+def read_image(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
+               lazy: bool = False, series: int = 0) -> Image:
+    """Read one series of an image file; see :func:`read_images`."""
+    images = read_images(path, axes=axes, channel_names=channel_names, lazy=lazy)
+    if not 0 <= series < len(images):
+        raise InputError(f"{path}: has {len(images)} series; series {series} does not exist")
+    return images[series]
+
+
+@contextlib.contextmanager
+def open_images(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None):
+    """Lazy images of every series of a file (see :func:`read_images`); the file is closed on exit."""
+    open_files: list = []
+    try:
+        yield read_images(path, axes=axes, channel_names=channel_names, lazy=True, _open_files=open_files)
+    finally:
+        for handle in open_files:
+            handle.close()
+
+
+# --- TIFF -------------------------------------------------------------------
+
+class _LogCapture(logging.Handler):
+    """Collect what tifffile logs about a damaged file, to re-emit as warnings."""
+
+    def __init__(self):
+        super().__init__(logging.WARNING)
+        self.messages: list[str] = []
+        self.errors: list[str] = []
+
+    def emit(self, record):
+        (self.errors if record.levelno >= logging.ERROR else self.messages).append(record.getMessage())
+
+
+def _ome_channel_names_and_sizes(ome_xml: str | None) -> list[tuple[list[str], dict]]:
+    """Per OME Image element: its channel names and physical pixel sizes."""
+    if not ome_xml:
+        return []
+    try:
+        root = ElementTree.fromstring(ome_xml)
+    except ElementTree.ParseError:
+        return []
+    result = []
+    for image in root.iter():
+        if not image.tag.endswith("}Image") and image.tag != "Image":
+            continue
+        pixels = next((p for p in image if p.tag.endswith("Pixels")), None)
+        if pixels is None:
+            continue
+        names = [ch.get("Name") or "" for ch in pixels if ch.tag.endswith("Channel")]
+        sizes = {}
+        for axis in "XYZ":
+            value = pixels.get(f"PhysicalSize{axis}")
+            if value is not None:
+                try:
+                    sizes[axis] = float(value)
+                except ValueError:
+                    pass
+        result.append((names, sizes))
+    return result
+
+
+def _tiff_axes(tif, series, axes_override: str | None, path: Path) -> str:
+    shape = series.shape
+    if axes_override is not None:
+        if len(axes_override) != len(shape):
+            raise InputError(
+                f"{path}: --axes {axes_override} has {len(axes_override)} letters but the image "
+                f"has {len(shape)} dimensions {tuple(shape)}; give one letter per dimension"
+            )
+        return axes_override
+    if tif.is_ome or tif.is_imagej:
+        axes = series.axes.replace("S", "C") if "C" not in series.axes else series.axes
+        if set(axes) <= set(CANONICAL_AXES) and len(set(axes)) == len(axes):
+            return axes
+    if len(shape) == 3:
+        return "CYX"
+    if len(shape) == 2:
+        return "YX"
+    raise InputError(
+        f"{path}: has {len(shape)} dimensions {tuple(shape)} and no axis metadata; "
+        f"give them with --axes, e.g. --axes {'TCZYX'[-len(shape):]}"
+    )
+
+
+def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: list | None = None) -> list[Image]:
+    import tifffile
+
+    logger = logging.getLogger("tifffile")
+    capture = _LogCapture()
+    logger.addHandler(capture)
+    propagate, logger.propagate = logger.propagate, False
+    try:
+        try:
+            tif = tifffile.TiffFile(path)
+        except Exception as exc:  # tifffile raises many types on damaged files
+            raise InputError(f"{path}: not a readable TIFF file ({_short(exc)}); check the file") from None
+        def refuse_if_damaged():
+            # tifffile reports damage (bad offsets, unreadable tags) as errors
+            # and carries on with what it could parse: refuse instead of
+            # returning a partial image.
+            if capture.errors:
+                raise InputError(f"{path}: damaged TIFF ({_short(Exception(capture.errors[0]))}); "
+                                 "check or re-export the file")
+
+        try:
+            refuse_if_damaged()  # damage found while opening
+            images = _tiff_series(tif, path, axes_override, lazy)
+            refuse_if_damaged()  # damage found while reading the series
+        except InputError:
+            tif.close()
+            raise
+        except Exception as exc:
+            tif.close()
+            raise InputError(f"{path}: damaged or unsupported TIFF ({_short(exc)}); check the file") from None
+        if not lazy:
+            tif.close()
+        elif open_files is not None:
+            open_files.append(tif)
+    finally:
+        logger.removeHandler(capture)
+        logger.propagate = propagate
+    if capture.messages:
+        import warnings
+
+        from ..errors import InputWarning
+
+        for message in dict.fromkeys(capture.messages):
+            warnings.warn(f"{path}: tifffile: {message}", InputWarning, stacklevel=3)
+    return images
+
+
+def _check_pixel_type(dtype, path: Path) -> None:
+    """Integer and floating-point pixels are accepted (the contract); anything else is refused."""
+    dtype = np.dtype(dtype)
+    if dtype.kind not in "uif":
+        raise InputError(f"{path}: pixel type {dtype} is not supported; convert the image to integer or "
+                         "floating-point pixels")
+
+
+def _short(exc: Exception) -> str:
+    text = " ".join(str(exc).split()) or type(exc).__name__
+    return text[:200]
+
+
+def _check_extent(series, path: Path, index: int) -> None:
+    """Refuse a series whose pixel data would lie beyond the end of the file."""
+    size = path.stat().st_size
+    for page in series.pages:
+        if page is None:
+            raise InputError(f"{path}: series {index} misses image planes (truncated file?); check the file")
+        offsets = getattr(page, "dataoffsets", ())
+        counts = getattr(page, "databytecounts", ())
+        if offsets and counts and max(o + c for o, c in zip(offsets, counts)) > size:
+            raise InputError(f"{path}: truncated: image data end beyond the end of the file; copy the file again")
+
+
+def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
+    ome = _ome_channel_names_and_sizes(tif.ome_metadata) if tif.is_ome else []
+    images = []
+    if not tif.series:
+        raise InputError(f"{path}: the TIFF holds no image; check the file")
+    for index, series in enumerate(tif.series):
+        n_pixels = int(np.prod(series.shape, dtype=np.float64))
+        if n_pixels == 0 or n_pixels > MAX_PIXELS:
+            raise InputError(f"{path}: series {index} declares an impossible shape {tuple(series.shape)}; check the file")
+        _check_extent(series, path, index)
+        axes = _tiff_axes(tif, series, axes_override, path)
+        if lazy:
+            import dask.array as da
+            import zarr
+
+            store = series.aszarr()
+            data = da.from_zarr(zarr.open(store, mode="r"))
+        else:
+            data = series.asarray()
+            if data.size != n_pixels:
+                raise InputError(f"{path}: truncated image data in series {index}; check the file")
+        _check_pixel_type(data.dtype, path)
+        data, canonical = to_canonical(data, axes)
+        n_channels = data.shape[canonical.index("C")]
+        names, sizes = ome[index] if index < len(ome) else ([], {})
+        if len(names) != n_channels or len(set(names)) != len(names) or not all(names):
+            names = _default_channel_names(n_channels)
+        images.append(Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
+                            source=str(path), series=index))
+    return images
+
+
+# --- OME-Zarr ---------------------------------------------------------------
+
+def _ngff_attrs(group) -> dict:
+    attrs = dict(group.attrs)
+    return dict(attrs["ome"]) if "ome" in attrs else attrs  # NGFF 0.5 nests under "ome"
+
+
+def _read_zarr(path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
+    import zarr
+
+    try:
+        root = zarr.open_group(str(path), mode="r")
+        attrs = _ngff_attrs(root)
+    except Exception as exc:
+        raise InputError(f"{path}: not a readable OME-Zarr folder ({_short(exc)}); check the path") from None
+    if "multiscales" in attrs:
+        groups = [root]
+    elif "bioformats2raw.layout" in attrs:
+        groups = [root[key] for key in sorted((k for k in root.group_keys() if k.isdigit()), key=int)]
+    else:
+        raise InputError(f"{path}: zarr folder without OME-Zarr (NGFF) 'multiscales' metadata; write it as OME-Zarr")
+    images = []
+    for index, group in enumerate(groups):
+        try:
+            images.append(_read_ngff_image(group, _ngff_attrs(group), path, index, axes_override, lazy))
+        except InputError:
+            raise
+        except Exception as exc:
+            raise InputError(f"{path}: damaged OME-Zarr metadata or data ({_short(exc)}); check the folder") from None
+    if not images:
+        raise InputError(f"{path}: OME-Zarr folder holds no image; check the path")
+    return images
+
+
+def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: bool) -> Image:
+    import dask.array as da
+
+    multiscale = attrs["multiscales"][0]
+    dataset = multiscale["datasets"][0]
+    array = group[dataset["path"]]
+    if axes_override is not None:
+        axes = axes_override
+    else:
+        axes = "".join(
+            (a["name"] if isinstance(a, dict) else a).upper() for a in multiscale.get("axes", [])
+        )
+        if not axes:
+            axes = {2: "YX", 3: "CYX"}.get(array.ndim, "")
+    if len(axes) != array.ndim:
+        raise InputError(
+            f"{path}: axes {axes!r} do not match the array's {array.ndim} dimensions; give --axes"
+        )
+    try:
+        check_axes(axes, "axes")
+    except ValueError as exc:
+        raise InputError(f"{path}: {exc}; give --axes") from None
+    sizes = {}
+    for transform in dataset.get("coordinateTransformations", []):
+        if transform.get("type") == "scale":
+            for letter, value in zip(axes, transform["scale"]):
+                if letter in "XYZ":
+                    sizes[letter] = float(value)
+    _check_pixel_type(array.dtype, path)
+    data = da.from_zarr(array) if lazy else np.asarray(array[...])
+    data, canonical = to_canonical(data, axes)
+    n_channels = data.shape[canonical.index("C")]
+    channels = attrs.get("omero", {}).get("channels", [])
+    names = [str(ch.get("label", "")) for ch in channels]
+    if len(names) != n_channels or len(set(names)) != len(names) or not all(names):
+        names = _default_channel_names(n_channels)
+    return Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
+                 source=str(path), series=index)
+
+
+# --- Reading blocks -----------------------------------------------------------
+
+def read_block(path, series: int, key: tuple, *, channels: Sequence[str], axes: str | None = None,
+               channel_names: Sequence[str] | None = None) -> np.ndarray:
+    """One block of one series of an image file as a numpy array.
+
+    `key` indexes the canonical axes (see :class:`Image`) of the image
+    restricted to `channels` (names, in that order). Meant for reading a
+    file block after block from many tasks: the file's metadata are parsed
+    once per process, and TIFF blocks are read page by page with tifffile
+    (several times faster than through the lazy dask array); other layouts
+    go through the lazy array.
+    """
+    path = Path(path)
+    stat = path.stat()
+    source = _block_source(str(path), (stat.st_mtime_ns, stat.st_size), series, axes,
+                           None if channel_names is None else tuple(channel_names), tuple(channels))
+    return source.read(key)
+
+
+def close_block_sources() -> None:
+    """Close the files :func:`read_block` keeps open (call when no read is in progress)."""
+    with _BLOCK_SOURCES_LOCK:
+        sources = list(_BLOCK_SOURCES.values())
+        _BLOCK_SOURCES.clear()
+    for source in sources:
+        source.close()
+
+
+class _BlockSource:
+    def __init__(self, image: Image, tif=None, pages: np.ndarray | None = None):
+        self.image, self.tif, self.pages = image, tif, pages
+
+    def close(self) -> None:
+        if self.tif is not None:
+            self.tif.close()
+
+    def read(self, key: tuple) -> np.ndarray:
+        if self.pages is None:
+            import dask
+
+            with dask.config.set(scheduler="synchronous"):
+                return np.asarray(self.image.data[key])
+        pages = self.pages[key]
+        planes = self.tif.asarray(key=[int(i) for i in pages.ravel()], series=self.image.series, maxworkers=1)
+        return planes.reshape(pages.shape[:-2] + planes.shape[-2:])
+
+
+# Files recently read by blocks, most recent last; `stamp` (modification time, size) is part
+# of the key, so an edited file is parsed again.
+_BLOCK_SOURCES: dict = {}
+_BLOCK_SOURCES_LOCK = threading.Lock()
+_BLOCK_SOURCES_KEPT = 8
+
+
+def _block_source(*key) -> _BlockSource:
+    with _BLOCK_SOURCES_LOCK:
+        source = _BLOCK_SOURCES.pop(key, None)
+        if source is not None:
+            _BLOCK_SOURCES[key] = source
+            return source
+    source = _open_block_source(*key)
+    with _BLOCK_SOURCES_LOCK:
+        kept = _BLOCK_SOURCES.setdefault(key, source)
+        # Evict the least recently used; batches read files one after another, so it is idle.
+        evicted = [_BLOCK_SOURCES.pop(k) for k in list(_BLOCK_SOURCES)[:-_BLOCK_SOURCES_KEPT]]
+    for old in evicted + ([source] if kept is not source else []):
+        old.close()
+    return kept
+
+
+def _open_block_source(path: str, stamp, series: int, axes, channel_names, channels) -> _BlockSource:
+    open_files: list = []
+    image = read_images(path, axes=axes, channel_names=channel_names, lazy=True, _open_files=open_files)[series]
+    indices = [image.channel_names.index(name) for name in channels]
+    image = image.select_channels(channels)
+    if not open_files:  # OME-Zarr
+        return _BlockSource(image)
+    tif = open_files[0]
+    tif.filehandle.set_lock(True)  # tasks on several threads read through this handle
+    stored = tif.series[series]
+    stored_axes = _tiff_axes(tif, stored, axes, Path(path))
+    page_shape = stored.pages[0].shape if len(stored.pages) else ()
+    # Page by page only when every page is one Y-X plane of the series, in C order of the
+    # leading dimensions (pages holding samples per pixel go through the lazy array).
+    if tuple(stored.shape[-2:]) != tuple(page_shape) or len(stored.pages) != int(np.prod(stored.shape[:-2])):
+        return _BlockSource(image, tif)
+    pages = np.arange(len(stored.pages)).reshape(tuple(stored.shape[:-2]) + (1, 1))
+    pages, canonical = to_canonical(pages, stored_axes)
+    pages = np.take(pages, indices, axis=canonical.index("C"))
+    return _BlockSource(image, tif, pages)
+
+
+# --- Writing ----------------------------------------------------------------
+
+def _planes(data, axes: str):
+    """Yield the YX planes of `data` in C order, computing dask blocks plane by plane."""
+    leading = data.shape[:-2]
+    for index in np.ndindex(*leading):
+        yield np.asarray(data[index])
+
+
+def write_ome_tiff(path, image: Image, *, provenance: dict | None = None, compression: str | None = None) -> Path:
+    """Write `image` as OME-TIFF atomically, with channel names and provenance.
+
+    The provenance dictionary is stored as JSON in the OME ``Image/Description``
+    element; physical pixel sizes are kept. Dask arrays are written plane by
+    plane, so memory stays bounded by one plane.
+    """
+    import tifffile
+
+    path = Path(path)
+    metadata = {
+        "axes": image.axes,
+        "Channel": {"Name": list(image.channel_names)},
+        "Name": path.name.split(".")[0],
+    }
+    for axis, size in image.pixel_size.items():
+        metadata[f"PhysicalSize{axis}"] = float(size)
+        metadata[f"PhysicalSize{axis}Unit"] = "µm"
+    if provenance is not None:
+        metadata["Description"] = json.dumps(provenance, sort_keys=True)
+    data = image.data
+    nbytes = int(np.prod(data.shape, dtype=np.float64)) * np.dtype(data.dtype).itemsize
+    with atomic_output(path) as tmp:
+        source = data if isinstance(data, np.ndarray) else _planes(data, image.axes)
+        tifffile.imwrite(
+            tmp, source, shape=data.shape, dtype=data.dtype, ome=True, metadata=metadata,
+            bigtiff=nbytes > 2**31, compression=compression, photometric="minisblack",
+        )
+    return path
+
+
+def read_provenance(path) -> dict | None:
+    """The provenance stored by :func:`write_ome_tiff` or :func:`write_ome_zarr`, or None."""
+    import tifffile
+
+    if Path(path).is_dir():
+        import zarr
+
+        value = zarr.open_group(str(path), mode="r").attrs.get("unmix_provenance")
+        return dict(value) if isinstance(value, dict) else None
+    with tifffile.TiffFile(path) as tif:
+        xml = tif.ome_metadata
+    if not xml:
+        return None
+    root = ElementTree.fromstring(xml)
+    for element in root.iter():
+        if element.tag.endswith("Description") and element.text:
+            try:
+                return json.loads(element.text)
+            except json.JSONDecodeError:
+                return None
+    return None
+
+
+def write_ome_zarr(path, image: Image, *, provenance: dict | None = None, chunks=None) -> Path:
+    """Write `image` as an OME-Zarr (NGFF) folder atomically, one resolution level.
+
+    Dask arrays are written block by block (in parallel, by dask).
+    """
+    import zarr
+    from ome_zarr.writer import write_image
+
+    path = Path(path)
+    axes = [{"name": a.lower(), "type": {"T": "time", "C": "channel"}.get(a, "space")} for a in image.axes]
+    scale = {a.lower(): float(image.pixel_size.get(a, 1.0)) for a in image.axes}
+    units = {a.lower(): "micrometer" for a in image.axes if a in image.pixel_size}
+    with atomic_output(path) as tmp:
+        group = zarr.open_group(str(tmp), mode="w")
+        write_image(image.data, group=group, axes=axes, scale_factors=[], scale=scale,
+                    axes_units=units or None,
+                    storage_options={"chunks": chunks} if chunks else None)
+        ome = dict(group.attrs.get("ome", {}))
+        omero = {"channels": [{"label": n, "active": True} for n in image.channel_names]}
+        if "ome" in group.attrs:
+            ome["omero"] = omero
+            group.attrs["ome"] = ome
+        else:
+            group.attrs["omero"] = omero
+        if provenance is not None:
+            group.attrs["unmix_provenance"] = provenance
+    return path
+
+
+def output_stem(path) -> str:
+    """The file name of `path` without its image suffix (``.ome.tif``, ``.tif``, ``.ome.zarr`` ...)."""
+    name = Path(path).name
+    lower = name.lower()
+    for suffix in sorted(TIFF_SUFFIXES + ZARR_SUFFIXES, key=len, reverse=True):
+        if lower.endswith(suffix):
+            return name[: -len(suffix)]
+    return name
+

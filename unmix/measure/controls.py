@@ -1,0 +1,664 @@
+"""Measuring the bleed-through matrix from single-label controls.
+
+For each label, every control field is reduced to per-block sufficient
+statistics in one pass, and both the coefficients and their bootstrap
+intervals are computed from those sums, so the bootstrap never touches the
+pixels again.
+
+The slope of each channel against the primary channel
+-----------------------------------------------------
+Both axes carry noise, and selecting pixels by thresholding the noisy primary
+value keeps pixels whose noise happened to be upward, which biases any slope
+low. Both problems are solved by one instrument: the mean of the 8
+neighbours of each pixel in the primary channel (centre excluded). Its noise
+is independent of the centre pixel's noise in every channel, while the
+optical blur makes it follow the centre's true signal. Pixels are selected on
+that proxy, and the slope is the instrumental-variable estimate
+
+    m_c = cov(z, y_c) / cov(z, y_p)
+
+with z the proxy, y_c the channel and y_p the primary (both background
+subtracted), covariances taken within each field, so that every field has a
+free intercept (reported as a quality figure: it should be near 0 after good
+background subtraction). The estimator is consistent with noise on both
+axes and unequal (shot-noise) variances.
+
+Uncertainty
+-----------
+95 % percentile intervals from a two-stage bootstrap: fields are resampled
+(when there are several), then square spatial blocks within each field, since
+neighbouring pixels are correlated by the structures and the blur. Because
+``k`` independent block resamples of one field add up to one multinomial
+draw of ``k`` times as many blocks, each replicate is a single weighted sum
+of block statistics.
+
+References
+----------
+.. [1] O. Reiersøl, "Confluence analysis by means of instrumental sets of
+   variables", Arkiv för Matematik, Astronomi och Fysik 32A (1945)
+   (from memory).
+.. [2] J. Durbin, "Errors in variables", Rev. Int. Stat. Inst. 22:23-32
+   (1954) (from memory).
+.. [3] E. Carlstein, "The use of subseries values for estimating the variance
+   of a general statistic from a stationary sequence", Ann. Statist.
+   14:1171-1179 (1986): non-overlapping block resampling (from memory).
+.. [4] B. Efron and R. Tibshirani, *An Introduction to the Bootstrap*,
+   Chapman & Hall (1993): percentile intervals (from memory).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Mapping, Sequence
+
+import numpy as np
+
+from ..errors import InputError, InputWarning
+from ..io.images import Image, read_images
+from .levels import ChannelSummary, per_channel_levels, reference_levels, saturation_level, summarise_channel
+from ..matrix import BleedThroughMatrix
+from ..threads import THREADS, map_in_threads
+
+
+@dataclass(frozen=True)
+class MeasureSettings:
+    """Parameters of the measurement (recorded in the matrix provenance).
+
+    Attributes
+    ----------
+    n_boot : int
+        Bootstrap replicates for the 95 % intervals.
+    block_size : int
+        Smallest side of the square spatial blocks resampled by the
+        bootstrap, in pixels; should exceed the size of the structures
+        (common practice). Large fields are resampled in larger blocks
+        (side doubled until at most `max_blocks` remain), which only makes
+        the blocks more independent and keeps the bootstrap cheap.
+    max_blocks : int
+        Most blocks per field that the bootstrap resamples.
+    min_snr : float
+        A pixel is signal when its neighbour-mean proxy exceeds the field's
+        background by this many background noise standard deviations.
+    min_pixels : int
+        Fewest usable pixels a label needs.
+    warn_saturated_fraction, max_saturated_fraction : float
+        Share of a control's signal pixels saturated in its primary channel
+        above which a warning is given / the control is refused.
+    seed : int
+        Seed of the bootstrap.
+    """
+
+    n_boot: int = 1000
+    block_size: int = 32
+    max_blocks: int = 1024
+    min_snr: float = 3.0
+    min_pixels: int = 200
+    warn_saturated_fraction: float = 0.01
+    max_saturated_fraction: float = 0.25
+    seed: int = 0
+
+    def __post_init__(self):
+        if self.n_boot < 100:
+            raise ValueError("n_boot must be at least 100 for a 95 % interval")
+        if self.block_size < 4:
+            raise ValueError("block_size must be at least 4 pixels")
+        if not self.min_snr > 0:
+            raise ValueError("min_snr must be positive")
+        if not 0 < self.warn_saturated_fraction <= self.max_saturated_fraction <= 1:
+            raise ValueError("need 0 < warn_saturated_fraction <= max_saturated_fraction <= 1")
+
+
+# Column layout of the per-block statistics: scalars first, then per-channel blocks.
+_N, _SZ, _SX, _SZX, _SXX, _NLO, _SZLO, _SXLO, _SZXLO = range(9)
+_N_SCALARS = 9
+_PER_CHANNEL = ("sy", "szy", "sxy", "syy", "sylo", "szylo")
+
+
+def _channel_column(name: str, c: int, n_channels: int) -> int:
+    return _N_SCALARS + _PER_CHANNEL.index(name) * n_channels + c
+
+
+@dataclass
+class _FieldResult:
+    source: str
+    primary: int
+    levels: np.ndarray        # saturation levels used
+    background: np.ndarray    # background subtracted
+    summaries: list           # ChannelSummary per channel
+    block_stats: np.ndarray   # (n_blocks, n_stats), blocks with usable pixels only
+    n_signal: int
+    n_usable: int
+    n_nonfinite: int
+    saturated_signal: np.ndarray  # per channel: signal pixels at/above saturation
+    channel_sums: np.ndarray      # per channel: background-subtracted sum over valid pixels
+    n_valid: int
+    noise: float
+    shift: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # per channel (dy, dx)
+
+
+def _as_field_images(source, read_options: dict) -> list[Image]:
+    if isinstance(source, Image):
+        return [source]
+    return read_images(source, **read_options)
+
+
+def _matched(image: Image, channels: Sequence[str], what: str) -> Image:
+    if set(image.channel_names) != set(channels) or len(image.channel_names) != len(channels):
+        raise InputError(
+            f"{image.name}: {what} has channels {list(image.channel_names)} but the first control has "
+            f"{list(channels)}; image every control in the same channels (or fix --channel-names)"
+        )
+    return image if tuple(image.channel_names) == tuple(channels) else image.select_channels(channels)
+
+
+def _stack(image: Image) -> np.ndarray:
+    """Pixels as (C, P, Y, X): channels first, all other leading axes merged."""
+    data = np.asarray(image.data)
+    data = np.moveaxis(data, image.channel_axis, 0)
+    return data.reshape(data.shape[0], -1, data.shape[-2], data.shape[-1])
+
+
+def _high_pass(plane: np.ndarray, size: int = 17) -> np.ndarray:
+    from scipy.ndimage import uniform_filter
+
+    return plane - uniform_filter(plane, size)
+
+
+def _registration_shift(reference: np.ndarray, moving: np.ndarray) -> np.ndarray:
+    """Sub-pixel shift of the cross-correlation peak (skimage phase_cross_correlation).
+
+    Both planes are high-pass filtered by the caller (:func:`_high_pass`):
+    smooth components (uneven illumination, diffuse autofluorescence) differ
+    between channels and would otherwise broaden and displace the peak
+    (common practice).
+    """
+    from skimage.registration import phase_cross_correlation
+
+    if not (np.any(reference) and np.any(moving)):
+        return np.array([np.nan, np.nan])
+    shift, _, _ = phase_cross_correlation(reference, moving, upsample_factor=5, normalization=None)
+    return np.asarray(shift, dtype=float)
+
+
+# Misregistration is flagged only where the leak is large enough both to
+# locate the correlation peak reliably and to matter (a rule of this tool).
+_REGISTRATION_MIN_LEAK = 0.05
+
+
+def _summaries(stack: np.ndarray) -> list[ChannelSummary]:
+    """Level summaries of every channel of a (C, ...) stack, channels in threads."""
+    return map_in_threads(summarise_channel, [(stack[c],) for c in range(stack.shape[0])])
+
+
+def _merge_blocks(stats: np.ndarray, blocks_y: int, blocks_x: int, max_blocks: int) -> np.ndarray:
+    """Sum 2 x 2 neighbouring blocks until at most `max_blocks` remain (sums add exactly)."""
+    grid = stats.reshape(blocks_y, blocks_x, -1)
+    while grid.shape[0] * grid.shape[1] > max_blocks and max(grid.shape[:2]) > 1:
+        ny, nx = grid.shape[:2]
+        padded = np.zeros((ny + ny % 2, nx + nx % 2, grid.shape[2]))
+        padded[:ny, :nx] = grid
+        grid = padded.reshape(padded.shape[0] // 2, 2, padded.shape[1] // 2, 2, -1).sum(axis=(1, 3))
+    return grid.reshape(-1, stats.shape[1])
+
+
+def _crop_for_registration(shape, usable_per_block: np.ndarray, block_size: int, size: int = 192):
+    """A window of at most `size` pixels centred on the block with most usable pixels."""
+    ny, nx = shape
+    by, bx = np.unravel_index(int(np.argmax(usable_per_block)), usable_per_block.shape)
+    cy, cx = by * block_size + block_size // 2, bx * block_size + block_size // 2
+    y0 = min(max(cy - size // 2, 0), max(ny - size, 0))
+    x0 = min(max(cx - size // 2, 0), max(nx - size, 0))
+    return slice(y0, y0 + size), slice(x0, x0 + size)
+
+
+def _field_statistics(image: Image, primary: int, levels: np.ndarray, background: np.ndarray | None,
+                      settings: MeasureSettings, allow_nonfinite: bool,
+                      summaries: list | None = None) -> _FieldResult:
+    from .kernels import field_statistics, proxy_sample
+
+    stack = _stack(image)
+    n_channels, n_planes, ny, nx = stack.shape
+    if ny < 3 or nx < 3:
+        raise InputError(f"{image.name}: image is only {ny} x {nx} pixels; a control needs at least 3 x 3")
+    if summaries is None:
+        summaries = _summaries(stack)
+    if background is None:
+        background = np.array([s.background for s in summaries])
+    if not np.all(np.isfinite(background)):
+        raise InputError(f"{image.name}: a channel has no finite pixels; check the control")
+    background = np.asarray(background, dtype=np.float64)
+    levels = np.asarray(levels, dtype=np.float64)
+    noise = summaries[primary].noise
+    threshold = (summaries[primary].background - background[primary]) + settings.min_snr * noise
+
+    # The dim/bright split needs only an approximate median: a sample of rows will do.
+    sample = proxy_sample(stack, background, primary, float(threshold), max(1, ny // 128))
+    split = float(np.median(sample)) if sample.size else 0.0
+    n_stats = _N_SCALARS + len(_PER_CHANNEL) * n_channels
+    # The kernel releases the GIL: split rows among threads.
+    bounds = np.linspace(0, ny, THREADS + 1).astype(int)
+    parts = map_in_threads(field_statistics, [
+        (stack, background, levels, primary, float(threshold), stack.dtype.kind == "f", int(a), int(b),
+         split, settings.block_size, n_stats, _N_SCALARS)
+        for a, b in zip(bounds[:-1], bounds[1:]) if b > a])
+    stats = sum(p[0] for p in parts)
+    n_signal = sum(p[1] for p in parts)
+    saturated_signal = sum(p[2] for p in parts)
+    channel_sums = sum(p[3] for p in parts)
+    n_valid = sum(p[4] for p in parts)
+    n_nonfinite = sum(p[5] for p in parts)
+    if n_nonfinite and not allow_nonfinite:
+        raise InputError(
+            f"{image.name}: {n_nonfinite} NaN/inf pixels; fix the control or pass --allow-nonfinite to exclude them"
+        )
+    blocks_y, blocks_x = -(-ny // settings.block_size), -(-nx // settings.block_size)
+    n_usable = int(stats[:, _N].sum())
+    shift = np.full((n_channels, 2), np.nan)
+    if n_usable:
+        rows, cols = _crop_for_registration((ny, nx), stats[:, _N].reshape(blocks_y, blocks_x),
+                                            settings.block_size)
+        plane = n_planes // 2
+
+        def crop(c):
+            window = stack[c, plane, rows, cols].astype(np.float32) - np.float32(background[c])
+            if n_nonfinite:
+                window = np.nan_to_num(window, nan=0.0, posinf=0.0, neginf=0.0)
+            return _high_pass(window)
+
+        reference = crop(primary)
+        for c in range(n_channels):
+            shift[c] = 0.0 if c == primary else _registration_shift(reference, crop(c))
+    stats = _merge_blocks(stats, blocks_y, blocks_x, settings.max_blocks)
+    stats = stats[stats[:, _N] > 0]
+
+    return _FieldResult(
+        source=image.name, primary=primary, levels=levels, background=background, summaries=summaries,
+        block_stats=stats, n_signal=int(n_signal), n_usable=n_usable, n_nonfinite=int(n_nonfinite),
+        saturated_signal=np.asarray(saturated_signal), channel_sums=np.asarray(channel_sums),
+        n_valid=int(n_valid), noise=float(noise), shift=shift,
+    )
+
+
+def _centred(sums: np.ndarray, n_channels: int) -> dict:
+    """Within-field centred cross products from summed block statistics (..., n_stats)."""
+    def col(name):
+        start = _channel_column(name, 0, n_channels)
+        return sums[..., start:start + n_channels]
+
+    n = sums[..., _N][..., None]
+    n_lo = sums[..., _NLO][..., None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        inv_n = np.where(n > 0, 1.0 / np.where(n > 0, n, 1), 0.0)
+        inv_lo = np.where(n_lo > 0, 1.0 / np.where(n_lo > 0, n_lo, 1), 0.0)
+        n_hi = n - n_lo
+        inv_hi = np.where(n_hi > 0, 1.0 / np.where(n_hi > 0, n_hi, 1), 0.0)
+    sz, sx, szx, sxx = (sums[..., i][..., None] for i in (_SZ, _SX, _SZX, _SXX))
+    szlo, sxlo, szxlo = (sums[..., i][..., None] for i in (_SZLO, _SXLO, _SZXLO))
+    sy, szy, sxy, syy, sylo, szylo = (col(name) for name in _PER_CHANNEL)
+    return {
+        "n": n,
+        "szy": szy - sz * sy * inv_n,
+        "szx": szx - sz * sx * inv_n,
+        "syy": syy - sy * sy * inv_n,
+        "sxy": sxy - sx * sy * inv_n,
+        "sxx": sxx - sx * sx * inv_n,
+        "mean_x": sx * inv_n,
+        "mean_y": sy * inv_n,
+        "szy_lo": szylo - szlo * sylo * inv_lo,
+        "szx_lo": szxlo - szlo * sxlo * inv_lo,
+        "szy_hi": (szy - szylo) - (sz - szlo) * (sy - sylo) * inv_hi,
+        "szx_hi": (szx - szxlo) - (sz - szlo) * (sx - sxlo) * inv_hi,
+    }
+
+
+def _slopes(field_sums: list[np.ndarray], n_channels: int) -> dict:
+    """IV slopes (..., C) pooled over fields with a free intercept per field.
+
+    Returns the slope over all usable pixels and over the dimmer and the
+    brighter half of them.
+    """
+    centred = [_centred(s, n_channels) for s in field_sums]
+    total = {key: sum(c[key] for c in centred) for key in ("szy", "szx", "szy_lo", "szx_lo", "szy_hi", "szx_hi")}
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return {"slope": total["szy"] / total["szx"],
+                "slope_dim": total["szy_lo"] / total["szx_lo"],
+                "slope_bright": total["szy_hi"] / total["szx_hi"]}
+
+
+def _point_estimates(fields: list[_FieldResult], n_channels: int) -> dict:
+    sums = [f.block_stats.sum(axis=0) for f in fields]
+    estimates = _slopes(sums, n_channels)
+    slope = estimates["slope"]
+    centred = [_centred(s, n_channels) for s in sums]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ss_res = sum(c["syy"] - 2 * slope * c["sxy"] + slope**2 * c["sxx"] for c in centred)
+        estimates["r_squared"] = 1 - ss_res / sum(c["syy"] for c in centred)
+        estimates["intercept"] = sum(c["n"] * (c["mean_y"] - slope * c["mean_x"]) for c in centred) / sum(
+            c["n"] for c in centred)
+    return estimates
+
+
+def _bootstrap(fields: list[_FieldResult], n_channels: int, settings: MeasureSettings,
+               rng: np.random.Generator) -> dict:
+    """Bootstrap replicates of the slopes (see :func:`_slopes`), each (n_boot, C)."""
+    n_fields = len(fields)
+    if n_fields > 1:
+        copies = rng.multinomial(n_fields, np.full(n_fields, 1 / n_fields), size=settings.n_boot)
+    else:
+        copies = np.ones((settings.n_boot, 1), dtype=np.int64)
+    from .kernels import block_weights
+
+    replicate_sums = []
+    for f, result in enumerate(fields):
+        draws = int(copies[:, f].sum()) * result.block_stats.shape[0]
+        random_bits = rng.bit_generator.random_raw(draws // 2 + 1)
+        weights = block_weights(copies[:, f].astype(np.int64), result.block_stats.shape[0], random_bits)
+        replicate_sums.append(weights @ result.block_stats)
+    return _slopes(replicate_sums, n_channels)
+
+
+def _finite_or_none(value):
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _grid(values) -> list:
+    return [[_finite_or_none(v) for v in row] for row in np.asarray(values, dtype=float)]
+
+
+def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=None, saturation=None,
+                   primary: Mapping[str, str] | None = None, allow_nonfinite: bool = False,
+                   settings: MeasureSettings | None = None, axes: str | None = None,
+                   channel_names: Sequence[str] | None = None) -> BleedThroughMatrix:
+    """Measure the bleed-through matrix from single-label control images.
+
+    Parameters
+    ----------
+    controls : mapping of str to sequence of Image or path
+        Label name -> its control fields. A path stands for every series in
+        that file; several fields of one label are pooled.
+    unstained, dark : Image or path, optional
+        Background reference: an unlabelled specimen (offset plus
+        autofluorescence) or a dark frame (offset only). Without either, the
+        background of each control field is estimated robustly from the
+        field itself (iterative 3-sigma clipping of the median).
+    saturation : float or sequence of float, optional
+        Saturation level, one for all channels or one per channel. Default:
+        the rule of :func:`unmix.measure.levels.saturation_level` on the pooled controls.
+    primary : mapping of str to str, optional
+        Label -> primary channel name, overriding "brightest channel".
+    allow_nonfinite : bool
+        Exclude (and count) NaN/inf pixels instead of refusing the control.
+    settings : MeasureSettings, optional
+    axes, channel_names : optional
+        Overrides for the files given as paths (see :func:`unmix.io.images.read_images`).
+
+    Returns
+    -------
+    BleedThroughMatrix
+        Kind "measured", with 95 % intervals and quality figures. Channel
+        order is that of the first control.
+
+    Raises
+    ------
+    InputError
+        For controls that cannot give a trustworthy matrix, naming the file.
+    """
+    settings = settings or MeasureSettings()
+    primary = dict(primary or {})
+    read_options = {"axes": axes, "channel_names": channel_names}
+    if not controls:
+        raise InputError("--control: give at least one single-label control")
+    labels = list(controls)
+    unknown = set(primary) - set(labels)
+    if unknown:
+        raise InputError(f"--primary: label {sorted(unknown)[0]!r} has no --control; name a label that has one")
+
+    sources = {label: list(controls[label]) for label in labels}
+    for label, fields in sources.items():
+        if not fields:
+            raise InputError(f"--control {label}: no control image given; give at least one path")
+    # Read the first field to fix the channel names and order.
+    first_images = _as_field_images(sources[labels[0]][0], read_options)
+    channels = list(first_images[0].channel_names)
+    n_channels = len(channels)
+    for label, name in primary.items():
+        if name not in channels:
+            raise InputError(f"--primary {label}={name}: no channel {name!r}; channels are {channels}")
+
+    background_source, reference = None, None
+    if unstained is not None:
+        background_source = "unstained"
+        reference = _matched(_as_field_images(unstained, read_options)[0], channels, "the unstained control")
+    elif dark is not None:
+        background_source = "dark"
+        reference = _matched(_as_field_images(dark, read_options)[0], channels, "the dark frame")
+    fixed_background = reference_levels(_stack(reference), reference.name) if reference is not None else None
+    fixed_levels = per_channel_levels(saturation, n_channels, "--saturation")
+
+    def field_images(label):
+        for i, source in enumerate(sources[label]):
+            images = first_images if (label == labels[0] and i == 0) else _as_field_images(source, read_options)
+            for image in images:
+                yield source, _matched(image, channels, f"the control of {label!r}")
+
+    def process(image, primary_index, summaries=None):
+        stack_levels = fixed_levels
+        if stack_levels is None:
+            summaries = summaries or _summaries(_stack(image))
+            stack_levels = np.array([saturation_level([s]) for s in summaries])
+        return _field_statistics(image, primary_index, stack_levels, fixed_background, settings,
+                                 allow_nonfinite, summaries)
+
+    results: dict[str, list[_FieldResult]] = {}
+    field_sources: dict[str, list] = {}
+    for label in labels:
+        results[label], field_sources[label] = [], []
+        forced = primary.get(label)
+        chosen = channels.index(forced) if forced else None
+        for source, image in field_images(label):
+            if chosen is None:
+                summaries = _summaries(_stack(image))
+                chosen = int(np.argmax([s.mean - s.background for s in summaries]))
+                result = process(image, chosen, summaries)
+                chosen = int(np.argmax(result.channel_sums))
+                if chosen != result.primary:
+                    result = process(image, chosen, result.summaries)
+            else:
+                result = process(image, chosen)
+            results[label].append(result)
+            field_sources[label].append(source)
+
+    pooled_summaries = [[s for fields in results.values() for f in fields for s in [f.summaries[c]]]
+                        for c in range(n_channels)]
+    levels = fixed_levels if fixed_levels is not None else np.array(
+        [saturation_level(pooled_summaries[c]) for c in range(n_channels)])
+
+    matrix = np.zeros((n_channels, len(labels)))
+    low, high = np.zeros_like(matrix), np.zeros_like(matrix)
+    grids = {name: np.full_like(matrix, np.nan) for name in
+             ("r_squared", "intercept", "slope_dim", "slope_bright", "saturated_fraction",
+              "registration_shift_px")}
+    per_label = {}
+    primaries = {}
+    flags = []
+
+    for k, label in enumerate(labels):
+        fields = results[label]
+        brightness = sum(f.channel_sums for f in fields) / max(sum(f.n_valid for f in fields), 1)
+        brightest = int(np.argmax(brightness))
+        p = fields[0].primary
+        if label not in primary and brightest != p:
+            # Pooled over fields another channel is brightest: redo with that one.
+            p = brightest
+        # Fields measured with a provisional primary, or with a saturation level
+        # above the pooled one, are measured again (rare: a second read).
+        redo = [i for i, f in enumerate(fields) if f.primary != p or np.any(f.levels > levels)]
+        if redo:
+            images = [image for _, image in field_images(label)]
+            for i in redo:
+                fields[i] = _field_statistics(images[i], p, levels, fixed_background, settings,
+                                              allow_nonfinite)
+        primaries[label] = channels[p]
+        where = ", ".join(dict.fromkeys(f.source for f in fields))
+
+        n_usable = sum(f.n_usable for f in fields)
+        n_signal = sum(f.n_signal for f in fields)
+        if n_usable < settings.min_pixels:
+            if n_signal and sum(f.saturated_signal[p] for f in fields) >= n_signal - n_usable > 0:
+                reason = "all its signal pixels are saturated"
+            else:
+                reason = "no pixels stand clearly above background"
+            raise InputError(
+                f"{where}: control of {label!r} has {n_usable} usable pixels (need {settings.min_pixels}): "
+                f"{reason}; image a brighter, unsaturated single-label control"
+            )
+        saturated_primary = sum(f.saturated_signal[p] for f in fields) / max(n_signal, 1)
+        if saturated_primary > settings.max_saturated_fraction:
+            raise InputError(
+                f"{where}: {100 * saturated_primary:.1f} % of the signal pixels of {label!r} are saturated in "
+                f"its primary channel {channels[p]!r} (limit {100 * settings.max_saturated_fraction:g} %); "
+                "re-image the control with less exposure or gain"
+            )
+        if saturated_primary > settings.warn_saturated_fraction:
+            flags.append(f"{label}: {100 * saturated_primary:.1f} % of signal pixels saturated in primary "
+                         f"channel {channels[p]} (excluded)")
+        if label in primary and brightest != p:
+            flags.append(f"{label}: primary channel {channels[p]} given by --primary is not the brightest "
+                         f"({channels[brightest]} is)")
+
+        estimates = _point_estimates(fields, n_channels)
+        rng = np.random.default_rng([settings.seed, k])
+        replicates = _bootstrap(fields, n_channels, settings, rng)
+        slope = estimates["slope"]
+        slope[p] = 1.0
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            lo, hi = np.nanpercentile(replicates["slope"], [2.5, 97.5], axis=0)
+            bow_lo, bow_hi = np.nanpercentile(replicates["slope_bright"] - replicates["slope_dim"],
+                                              [2.5, 97.5], axis=0)
+        lo, hi = np.fmin(lo, slope), np.fmax(hi, slope)
+        lo[p] = hi[p] = 1.0
+        matrix[:, k], low[:, k], high[:, k] = slope, lo, hi
+        for name in ("r_squared", "intercept", "slope_dim", "slope_bright"):
+            grids[name][:, k] = estimates[name]
+        grids["saturated_fraction"][:, k] = sum(f.saturated_signal for f in fields) / max(n_signal, 1)
+        shifts = np.array([np.hypot(*f.shift.T) for f in fields])
+        grids["registration_shift_px"][:, k] = np.nanmax(shifts, axis=0) if np.isfinite(shifts).any() else np.nan
+
+        for c in range(n_channels):
+            if c == p:
+                continue
+            detectable = lo[c] > 0 or hi[c] < 0
+            # Non-linearity: the slopes over the dim and the bright half differ
+            # significantly (bootstrap interval of the difference excludes 0)
+            # and by more than a fifth of the coefficient (a rule of this tool).
+            bow = abs(estimates["slope_bright"][c] - estimates["slope_dim"][c])
+            significant = bow_lo[c] > 0 or bow_hi[c] < 0
+            if detectable and significant and bow > 0.2 * abs(slope[c]):
+                flags.append(f"{label} in {channels[c]}: slope differs between dim and bright pixels "
+                             f"({estimates['slope_dim'][c]:.4f} vs {estimates['slope_bright'][c]:.4f}): a non-linear "
+                             "detector or an unmodelled signal such as structured autofluorescence")
+            shift = grids["registration_shift_px"][c, k]
+            if not detectable:
+                # No leak to correlate with: the peak position would be noise.
+                grids["registration_shift_px"][c, k] = np.nan
+            elif shift > 0.5 and abs(slope[c]) >= _REGISTRATION_MIN_LEAK:
+                flags.append(f"{label} in {channels[c]}: channel shifted {shift:.2f} px from the primary; "
+                             "correct the registration before measuring")
+        if not np.all(np.isfinite(slope)):
+            raise InputError(f"{where}: control of {label!r} gives no finite slope; check that it holds structure, not flat signal")
+
+        per_label[label] = {
+            "fields": len(fields),
+            "sources": [f.source for f in fields],
+            "usable_pixels": int(n_usable),
+            "signal_pixels": int(n_signal),
+            "nonfinite_pixels": int(sum(f.n_nonfinite for f in fields)),
+            "primary_saturated_fraction": _finite_or_none(saturated_primary),
+            "primary_is_brightest": bool(brightest == p),
+            "brightness": {channels[c]: _finite_or_none(brightness[c]) for c in range(n_channels)},
+            "noise_sd": _finite_or_none(np.mean([f.noise for f in fields])),
+            "blocks": int(sum(f.block_stats.shape[0] for f in fields)),
+        }
+
+    for message in flags:
+        warnings.warn(message, InputWarning, stacklevel=2)
+
+    all_fields = [f for fields in results.values() for f in fields]
+    if fixed_background is not None:
+        background = fixed_background
+    else:
+        background_source = "estimated"
+        background = np.mean([f.background for f in all_fields], axis=0)
+
+    qc = {name: _grid(values) for name, values in grids.items()}
+    qc["labels"] = per_label
+    qc["flags"] = flags
+    qc["definitions"] = {
+        "r_squared": "share of the channel's variance explained by the line, pooled over fields",
+        "intercept": "fitted offset at zero primary signal, input units; near 0 after good background subtraction",
+        "slope_dim": "slope over the dimmer half of the usable pixels",
+        "slope_bright": "slope over the brighter half; differs from slope_dim when the detector is non-linear",
+        "saturated_fraction": "share of the label's signal pixels saturated in this channel (excluded)",
+        "registration_shift_px": "shift of the cross-correlation peak between this channel and the primary "
+                                 "(null where the leak is too small to measure it)",
+    }
+    return BleedThroughMatrix(
+        kind="measured", channels=tuple(channels), labels=tuple(labels), primary=primaries,
+        matrix=matrix, ci95_low=low, ci95_high=high, background=np.asarray(background, dtype=float),
+        background_source=background_source, saturation=np.asarray(levels, dtype=float), qc=qc,
+        provenance={"settings": settings.__dict__.copy()},
+    )
+
+
+def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None, saturation=None,
+                  primary=None, allow_nonfinite=False, settings=None, axes=None,
+                  channel_names=None) -> BleedThroughMatrix:
+    """:func:`measure_matrix` on files, with axis and channel-name overrides and full provenance.
+
+    Every path is read only when it is processed, so memory holds one
+    control field at a time.
+    """
+    from ..io import provenance as prov
+
+    settings = settings or MeasureSettings()
+    seen = {}
+    all_paths = [(label, path) for label, paths in controls.items() for path in paths]
+    all_paths += [(role, p) for role, p in (("unstained", unstained), ("dark", dark)) if p is not None]
+    for role, path in all_paths:
+        identity = str(Path(path).resolve())
+        if identity in seen:
+            raise InputError(f"{path}: given twice (as {seen[identity]!r} and {role!r}); give each file once")
+        seen[identity] = role
+        if not Path(path).exists():
+            raise InputError(f"{path}: no such file; check the path")
+
+    from concurrent.futures import ThreadPoolExecutor
+
+    # Checksums are computed in a background thread while measuring (hashlib
+    # releases the GIL), so that the second core can take that work.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        described = [pool.submit(prov.describe_input, path, "control" if role in controls else role,
+                                 **({"label": role} if role in controls else {})) for role, path in all_paths]
+        matrix = measure_matrix(
+            controls, unstained=unstained, dark=dark, saturation=saturation, primary=primary,
+            allow_nonfinite=allow_nonfinite, settings=settings, axes=axes, channel_names=channel_names,
+        )
+        entries = [future.result() for future in described]
+    provenance = {
+        "created": prov.utc_now(),
+        "command": "measure",
+        "software": prov.software(),
+        "inputs": entries,
+        "parameters": {
+            "settings": settings.__dict__.copy(), "saturation": saturation, "primary": dict(primary or {}),
+            "allow_nonfinite": allow_nonfinite, "axes": axes,
+            "channel_names": None if channel_names is None else list(channel_names),
+        },
+    }
+    return BleedThroughMatrix.from_dict({**matrix.to_dict(), "provenance": provenance})
+

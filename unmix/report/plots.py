@@ -1,0 +1,169 @@
+"""Figures (matplotlib, no display needed) shared by the command line, the report and the plugin.
+
+Every function returns a matplotlib Figure; :func:`save_png` writes one
+atomically. Verdicts are told apart by marker shape and text as well as by
+colour, so that no reading depends on telling red from green.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+# Verdict -> (colour, marker): colour-blind-safe hues (Okabe-Ito palette), distinct shapes.
+VERDICT_STYLE = {
+    "agrees": ("#009E73", "o"),
+    "higher": ("#D55E00", "^"),
+    "lower": ("#0072B2", "v"),
+    "below-detection": ("#999999", "s"),
+}
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def save_png(figure, path) -> Path:
+    """Write `figure` as PNG atomically and close it."""
+    from ..io.atomic import atomic_output
+
+    path = Path(path)
+    with atomic_output(path) as tmp:
+        figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
+    _pyplot().close(figure)
+    return path
+
+
+def spectra_figure(description):
+    """One panel per channel: the labels' emission spectra, the channel's emission band shaded,
+    its dichroic dashed and its excitation marked."""
+    plt = _pyplot()
+    nm = description.grid.nm
+    n = len(description.channels)
+    figure, axes = plt.subplots(n, 1, figsize=(7.5, 1.9 * n + 0.6), sharex=True, squeeze=False)
+    colours = plt.get_cmap("tab10")
+    emission = {}
+    for label in description.labels:
+        values = label.emission(nm)
+        emission[label.name] = values / values.max() if values.max() > 0 else values
+    for axis, channel in zip(axes[:, 0], description.channels):
+        if channel.emission_filter is not None:
+            axis.fill_between(nm, 0, channel.emission_filter(nm), color="0.85", label="emission filter")
+        if channel.dichroic is not None:
+            axis.plot(nm, channel.dichroic(nm), "k--", lw=0.8, label="dichroic (transmission)")
+        for i, (name, values) in enumerate(emission.items()):
+            axis.plot(nm, values, color=colours(i), lw=1.4, label=name)
+        source = channel.source
+        if source.line_nm is not None:
+            axis.axvline(source.line_nm, color="k", lw=1.5, ls=":", label=f"excitation {source.line_nm:g} nm")
+        else:
+            power = source.spectrum(nm)
+            axis.plot(nm, power / power.max(), color="k", lw=1.0, ls=":", label="excitation source")
+        axis.set_ylim(0, 1.05)
+        axis.set_ylabel(channel.name, rotation=0, ha="right", va="center")
+        axis.set_yticks([0, 0.5, 1])
+    axes[0, 0].legend(fontsize=7, ncol=4, loc="lower center", bbox_to_anchor=(0.5, 1.02))
+    axes[-1, 0].set_xlabel("wavelength (nm)")
+    figure.suptitle("Emission spectra (peak 1) and each channel's filters", fontsize=10, y=1.0 + 0.25 / n)
+    return figure
+
+
+def matrices_figure(measured, predicted_values: np.ndarray):
+    """Measured and predicted matrices side by side as annotated heat maps (same colour scale)."""
+    plt = _pyplot()
+    figure, axes = plt.subplots(1, 2, figsize=(2.2 + 1.5 * len(measured.labels) * 2, 1.0 + 0.7 * len(measured.channels)))
+    top = max(float(np.max(measured.matrix)), float(np.max(predicted_values)), 1.0)
+    for axis, values, title in ((axes[0], measured.matrix, "measured"), (axes[1], predicted_values, "predicted")):
+        image = axis.imshow(values, cmap="viridis", vmin=0, vmax=top)
+        for (c, k), value in np.ndenumerate(values):
+            axis.text(k, c, f"{value:.3f}", ha="center", va="center", fontsize=8,
+                      color="white" if value < 0.6 * top else "black")
+        axis.set_xticks(range(len(measured.labels)), measured.labels, rotation=30, ha="right")
+        axis.set_yticks(range(len(measured.channels)), measured.channels)
+        axis.set_title(title)
+    figure.colorbar(image, ax=axes, shrink=0.8, label="coefficient")
+    return figure
+
+
+def comparison_figure(comparison):
+    """Measured against predicted on log axes, 95 % intervals as bars, the tolerance band shaded."""
+    plt = _pyplot()
+    figure, axis = plt.subplots(figsize=(5.5, 5.0))
+    floor = comparison.detection_floor / 10
+    values = [max(v, floor) for row in comparison.coefficients
+              for v in (row["measured"], row["predicted"], row["ci95"][1])] or [1.0]
+    low, high = min(values) / 2, max(max(values) * 2, 1.0)
+    line = np.geomspace(low, high, 50)
+    axis.fill_between(line, line / (1 + comparison.tolerance), line * (1 + comparison.tolerance), color="0.9",
+                      label=f"model tolerance ±{comparison.tolerance:.0%}")
+    axis.plot(line, line, color="0.5", lw=0.8)
+    for verdict, (colour, marker) in VERDICT_STYLE.items():
+        rows = [r for r in comparison.coefficients if r["verdict"] == verdict]
+        if not rows:
+            continue
+        x = np.array([max(r["predicted"], floor) for r in rows])
+        y = np.array([max(r["measured"], floor) for r in rows])
+        lo = np.array([max(r["ci95"][0], floor) for r in rows])
+        hi = np.array([max(r["ci95"][1], floor) for r in rows])
+        axis.errorbar(x, y, yerr=[np.maximum(y - lo, 0), np.maximum(hi - y, 0)], fmt=marker, color=colour,
+                      ms=7, capsize=2, label=verdict)
+        for r, xi, yi in zip(rows, x, y):
+            if verdict in ("higher", "lower"):
+                axis.annotate(f"{r['label']} in {r['channel']}", (xi, yi), fontsize=7, xytext=(4, 4),
+                              textcoords="offset points")
+    axis.axvspan(low, comparison.detection_floor, color="0.95", zorder=-1)
+    axis.set_xscale("log")
+    axis.set_yscale("log")
+    axis.set_xlim(low, high)
+    axis.set_ylim(low, high)
+    axis.set_xlabel("predicted coefficient")
+    axis.set_ylabel("measured coefficient (95 % interval)")
+    axis.legend(fontsize=8, loc="upper left")
+    axis.set_title("Measured versus predicted bleed-through", fontsize=10)
+    return figure
+
+
+def coloc_histograms(before_pixels, after_pixels, result):
+    """2-D intensity histograms of the pair before and after unmixing (log colour scale), with the
+    thresholds and the orthogonal regression line drawn; the verdict in the title."""
+    from matplotlib.colors import LogNorm
+
+    from ..coloc.statistics import orthogonal_regression
+
+    plt = _pyplot()
+    figure, axes = plt.subplots(1, 2, figsize=(10.5, 4.8), layout="constrained")
+    a_label, b_label = result.pair
+    for axis, (a, b), coefficients, title in (
+            (axes[0], before_pixels, result.before, "before: primary channels, background subtracted"),
+            (axes[1], after_pixels, result.after, "after: unmixed abundances")):
+        a, b = np.asarray(a, dtype=float).ravel(), np.asarray(b, dtype=float).ravel()
+        keep = np.isfinite(a) & np.isfinite(b)
+        a, b = a[keep], b[keep]
+        if a.size == 0:
+            axis.set_title(f"{title}\n(no pixels)", fontsize=9)
+            continue
+        _, _, _, image = axis.hist2d(a, b, bins=128, norm=LogNorm(), cmap="magma")
+        figure.colorbar(image, ax=axis, label="pixels")
+        if coefficients.thresholds is not None:
+            t_a, t_b = coefficients.thresholds
+            axis.axvline(t_a, color="#56B4E9", lw=1, ls="--", label=f"threshold {a_label}")
+            axis.axhline(t_b, color="#56B4E9", lw=1, ls=":", label=f"threshold {b_label}")
+        if np.ptp(a) > 0 and np.ptp(b) > 0:
+            slope, intercept = orthogonal_regression(a, b)
+            x = np.array([a.min(), a.max()])
+            axis.plot(x, slope * x + intercept, color="white", lw=1.2, label="orthogonal regression")
+            axis.set_ylim(b.min(), b.max())
+        r = "undefined" if coefficients.pearson is None else f"{coefficients.pearson:.3f}"
+        p = "-" if coefficients.p_value is None else f"{coefficients.p_value:.3g}"
+        axis.set_title(f"{title}\nPearson r = {r}, p = {p}", fontsize=9)
+        axis.set_xlabel(a_label)
+        axis.set_ylabel(b_label)
+        axis.legend(fontsize=7, loc="upper left")
+    figure.suptitle(f"{a_label} and {b_label}: {result.verdict}", fontsize=11)
+    return figure

@@ -1,0 +1,56 @@
+"""Plain-text summaries for the terminal."""
+
+from __future__ import annotations
+
+from ..matrix import BleedThroughMatrix
+
+
+def table(rows: list[list[str]]) -> str:
+    """Columns aligned, first left and the rest right, a rule under the header row."""
+    widths = [max(len(row[i]) for row in rows) for i in range(len(rows[0]))]
+    lines = ["  ".join(cell.ljust(w) if i == 0 else cell.rjust(w) for i, (cell, w) in enumerate(zip(row, widths)))
+             for row in rows]
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    return "\n".join(lines)
+
+
+def matrix_rows(matrix: BleedThroughMatrix) -> list[list[str]]:
+    """One row per channel: its name, then each label's coefficient with its 95 % interval."""
+    rows = []
+    for c, channel in enumerate(matrix.channels):
+        cells = [channel]
+        for k, label in enumerate(matrix.labels):
+            value = matrix.matrix[c, k]
+            if matrix.primary[label] == channel:
+                cells.append("1 (primary)")
+            elif matrix.ci95_low is not None:
+                cells.append(f"{value:.4f} [{matrix.ci95_low[c, k]:.4f}, {matrix.ci95_high[c, k]:.4f}]")
+            else:
+                cells.append(f"{value:.4f}")
+        rows.append(cells)
+    return rows
+
+
+def matrix_summary(matrix: BleedThroughMatrix) -> str:
+    """The matrix with its 95 % intervals, per-label counts and any QC flags."""
+    rows = [["channel \\ label", *matrix.labels], *matrix_rows(matrix)]
+    parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel"
+             + (", 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
+    per_label = matrix.qc.get("labels", {})
+    if per_label:
+        rows = [["label", "primary", "fields", "usable pixels", "saturated in primary"]]
+        for label in matrix.labels:
+            info = per_label.get(label, {})
+            fraction = info.get("primary_saturated_fraction")
+            rows.append([label, matrix.primary[label], str(info.get("fields", "")),
+                         str(info.get("usable_pixels", "")),
+                         "" if fraction is None else f"{100 * fraction:.2f} %"])
+        parts += ["", table(rows)]
+    if matrix.background is not None:
+        levels = ", ".join(f"{c} {b:.1f}" for c, b in zip(matrix.channels, matrix.background))
+        parts += ["", f"Background ({matrix.background_source}): {levels}"]
+    parts += ["", f"Condition number {matrix.condition_number():.2f}; noise penalty "
+              + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, matrix.noise_penalty()))]
+    for flag in matrix.qc.get("flags", []):
+        parts.append(f"QC: {flag}")
+    return "\n".join(parts)
