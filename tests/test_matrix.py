@@ -68,7 +68,16 @@ def _edited(tmp_path, edit):
 
 @pytest.mark.parametrize("edit, message", [
     (lambda d: d.update(format="other"), "format"),
-    (lambda d: d.update(version=2), "version"),
+    (lambda d: d.update(version=3), "version"),
+    (lambda d: d.update(version=True), "version"),
+    (lambda d: d.update(noise_model={"gain": [1, 1, 1]}), "noise_model"),
+    (lambda d: d.update(noise_model={"read_variance": [1, 1, 1], "gain": [1, -1, 1], "source": "controls"}),
+     "gain"),
+    (lambda d: d.update(noise_model={"read_variance": [1, 1, 1], "gain": [1, 1, 1], "source": "guess"}),
+     "source"),
+    (lambda d: d.update(column_covariance=[[[1, 0, 0]] * 3] * 2), "column_covariance"),
+    (lambda d: d.update(column_covariance=[[[0, 1, 0], [0, 0, 0], [0, 0, 0]]] * 2), "symmetric"),
+    (lambda d: d.update(column_covariance=[[[0, 0, 0], [0, -1, 0], [0, 0, 0]]] * 2), "semi-definite"),
     (lambda d: d.update(kind="guessed"), "kind"),
     (lambda d: d.update(channels=["c1", "c1", "c3"]), "duplicate"),
     (lambda d: d.update(labels=[]), "labels"),
@@ -89,6 +98,30 @@ def test_invalid_matrix_files_are_named(tmp_path, edit, message):
     with pytest.raises(InputError, match=message) as info:
         load_matrix(path)
     assert str(path) in str(info.value)
+
+
+def test_version_1_files_still_load(tmp_path):
+    # Files written before the noise model and the column covariance existed.
+    data = _matrix().to_dict()
+    data["version"] = 1
+    del data["noise_model"], data["column_covariance"]
+    path = tmp_path / "v1.json"
+    path.write_text(json.dumps(data))
+    matrix = load_matrix(path)
+    assert matrix.noise_model is None and matrix.column_covariance is None
+    np.testing.assert_array_equal(matrix.matrix, _matrix().matrix)
+
+
+def test_noise_model_and_covariance_round_trip(tmp_path):
+    covariance = np.zeros((2, 3, 3))
+    covariance[0, 1:, 1:] = [[4e-4, 1e-4], [1e-4, 9e-4]]
+    matrix = BleedThroughMatrix.from_dict({
+        **_matrix().to_dict(), "column_covariance": covariance.tolist(),
+        "noise_model": {"read_variance": [4.0, 5.0, 6.0], "gain": [0.5, 0.6, 0.7], "source": "controls"}})
+    again = load_matrix(matrix.save(tmp_path / "m.json"))
+    np.testing.assert_array_equal(again.column_covariance, covariance)
+    np.testing.assert_array_equal(again.noise_model["gain"], [0.5, 0.6, 0.7])
+    assert again.noise_model["source"] == "controls"
 
 
 @pytest.mark.parametrize("text", ["", "{", "[1, 2]", '{"format": NaN}', "\udcff"])

@@ -2,8 +2,19 @@
 
 ``M[c, k]`` is the signal of label ``k`` in channel ``c`` divided by its
 signal in its primary channel, so every column is 1 at its primary channel.
-The file format (``"format": "unmix-matrix"``, version 1) is JSON; loading
-validates every field and names the first one that is wrong.
+The file format (``"format": "unmix-matrix"``, version 2) is JSON; loading
+validates every field and names the first one that is wrong. Version 1 files
+(without ``noise_model`` and ``column_covariance``) still load.
+
+Version 2 adds, for a measured matrix:
+
+- ``noise_model``: the detector's photon-transfer line per channel, variance
+  = ``read_variance`` + ``gain`` x (background-subtracted signal), in input
+  units, and where it was measured (``source``);
+- ``column_covariance``: for each label, the C x C covariance of its column
+  of coefficients. Columns come from different controls and are independent
+  of each other; within a column the coefficients share the control's noise
+  and fields. Matrix draws for uncertainty propagation use it.
 """
 
 from __future__ import annotations
@@ -21,7 +32,9 @@ from .io.atomic import write_text_atomic
 from .errors import InputError, read_user_text
 
 FORMAT = "unmix-matrix"
-VERSION = 1
+VERSION = 2
+READABLE_VERSIONS = (1, 2)
+NOISE_SOURCES = ("controls", "controls and dark frame", "image")
 KINDS = ("measured", "predicted")
 BACKGROUND_SOURCES = ("unstained", "dark", "estimated")
 _PRIMARY_TOLERANCE = 1e-6
@@ -47,6 +60,12 @@ class BleedThroughMatrix:
         Level subtracted before unmixing, in input units (measured only).
     background_source : {"unstained", "dark", "estimated"} or None
     saturation : ndarray, shape (C,), or None
+    noise_model : dict or None
+        ``{"read_variance": (C,), "gain": (C,), "source": str}``: variance of a
+        pixel = read_variance + gain x background-subtracted signal (input units).
+    column_covariance : ndarray, shape (K, C, C), or None
+        Covariance of each label's column of coefficients (measured only);
+        rows and columns of the primary channel are 0.
     qc : dict
         Quality figures per coefficient and per label.
     provenance : dict
@@ -63,6 +82,8 @@ class BleedThroughMatrix:
     background: np.ndarray | None = None
     background_source: str | None = None
     saturation: np.ndarray | None = None
+    noise_model: dict | None = None
+    column_covariance: np.ndarray | None = None
     qc: dict = field(default_factory=dict)
     provenance: dict = field(default_factory=dict)
 
@@ -113,6 +134,10 @@ class BleedThroughMatrix:
             "background": listed(self.background),
             "background_source": self.background_source,
             "saturation": listed(self.saturation),
+            "noise_model": None if self.noise_model is None else {
+                "read_variance": listed(self.noise_model["read_variance"]),
+                "gain": listed(self.noise_model["gain"]), "source": self.noise_model["source"]},
+            "column_covariance": listed(self.column_covariance),
             "qc": self.qc,
             "provenance": self.provenance,
         }
@@ -162,6 +187,7 @@ class BleedThroughMatrix:
             primary=dict(data["primary"]), matrix=array("matrix"), ci95_low=array("ci95_low"),
             ci95_high=array("ci95_high"), background=array("background"),
             background_source=data.get("background_source"), saturation=array("saturation"),
+            noise_model=_noise_model(data.get("noise_model")), column_covariance=array("column_covariance"),
             qc=dict(data.get("qc") or {}), provenance=dict(data.get("provenance") or {}),
         )
 
@@ -218,8 +244,9 @@ def validate_matrix_dict(data, where: str = "matrix") -> None:
         raise InputError(f"{where}: a matrix file must hold a JSON object; fix the matrix file")
     if data.get("format") != FORMAT:
         raise InputError(f"{where}: 'format' must be \"{FORMAT}\"; this is not a matrix file of this tool")
-    if data.get("version") != VERSION:
-        raise InputError(f"{where}: unsupported version {data.get('version')!r}; this tool reads version {VERSION}")
+    if data.get("version") not in READABLE_VERSIONS or isinstance(data.get("version"), bool):
+        raise InputError(f"{where}: unsupported version {data.get('version')!r}; this tool reads versions "
+                         f"{', '.join(map(str, READABLE_VERSIONS))}")
     kind = data.get("kind")
     if kind not in KINDS:
         raise InputError(f"{where}: 'kind' must be one of {list(KINDS)}, not {kind!r}; fix the matrix file")
@@ -257,9 +284,55 @@ def validate_matrix_dict(data, where: str = "matrix") -> None:
     if (background is None) != (source is None):
         raise InputError(f"{where}: 'background' and 'background_source' must both be given or both null; fix the matrix file")
     _vector(data, "saturation", shape[0], where, positive=True)
+    _validate_noise_model(data.get("noise_model"), shape[0], where)
+    _validate_column_covariance(data.get("column_covariance"), shape, kind, where)
     for key in ("qc", "provenance"):
         if data.get(key) is not None and not isinstance(data.get(key), dict):
             raise InputError(f"{where}: '{key}' must be a JSON object; fix the matrix file")
+
+
+def _validate_noise_model(value, n_channels: int, where: str) -> None:
+    if value is None:
+        return
+    if not isinstance(value, dict) or set(value) != {"read_variance", "gain", "source"}:
+        raise InputError(f"{where}: 'noise_model' must be null or an object with 'read_variance', 'gain' and "
+                         "'source'; fix the matrix file")
+    for key in ("read_variance", "gain"):
+        array = _vector(value, key, n_channels, f"{where}: noise_model")
+        if array is None or np.any(array < 0):
+            raise InputError(f"{where}: noise_model '{key}' must be {n_channels} numbers >= 0; fix the matrix file")
+    if value["source"] not in NOISE_SOURCES:
+        raise InputError(f"{where}: noise_model 'source' must be one of {list(NOISE_SOURCES)}; fix the matrix file")
+
+
+def _noise_model(value) -> dict | None:
+    if value is None:
+        return None
+    return {"read_variance": np.asarray(value["read_variance"], dtype=float),
+            "gain": np.asarray(value["gain"], dtype=float), "source": value["source"]}
+
+
+def _validate_column_covariance(value, shape, kind: str, where: str) -> None:
+    if value is None:
+        return
+    if kind == "predicted":
+        raise InputError(f"{where}: a predicted matrix has no 'column_covariance'; set it to null")
+    n_channels, n_labels = shape
+    if not (isinstance(value, list) and len(value) == n_labels and all(_is_grid(v, (n_channels, n_channels))
+                                                                      for v in value)):
+        raise InputError(f"{where}: 'column_covariance' must be {n_labels} (labels) matrices of {n_channels} x "
+                         f"{n_channels} numbers; fix the matrix file")
+    try:
+        array = np.asarray(value, dtype=float)
+    except (TypeError, ValueError, OverflowError):
+        raise InputError(f"{where}: 'column_covariance' holds something that is not a number; fix the matrix "
+                         "file") from None
+    if not np.all(np.isfinite(array)):
+        raise InputError(f"{where}: 'column_covariance' holds non-finite values; fix the matrix file")
+    if np.any(np.abs(array - np.swapaxes(array, 1, 2)) > 1e-9 * np.maximum(1e-300, np.abs(array).max())):
+        raise InputError(f"{where}: 'column_covariance' is not symmetric; fix the matrix file")
+    if np.any(np.linalg.eigvalsh(array) < -1e-9 * np.maximum(1e-300, np.abs(array).max())):
+        raise InputError(f"{where}: 'column_covariance' is not positive semi-definite; fix the matrix file")
 
 
 def _reject_constant(name):
