@@ -211,3 +211,72 @@ def test_misregistered_channel_is_flagged(scenario):
     with pytest.warns(InputWarning, match="shifted"):
         matrix = measure_matrix({"Fernlight": [shifted]}, settings=FAST)
     assert matrix.qc["registration_shift_px"][2][0] == pytest.approx(2.0, abs=0.3)
+
+
+def test_random_effects_interval_covers_the_mean_over_fields():
+    # Simulation with known truth: k field estimates drawn from N(mu, within variance + tau^2) with
+    # unequal within-field variances; the Hartung-Knapp random-effects interval (DerSimonian & Laird
+    # 1986; Hartung & Knapp 2001) covers mu in 90-99 % of 1,000 repetitions for k = 3 and k = 6,
+    # and the between-field SD estimate is unbiased to within 25 % on average for k = 6.
+    from unmix.measure.controls import random_effects
+
+    rng = np.random.default_rng(8)
+    for k in (3, 6):
+        within = rng.uniform(0.5, 2.0, (1000, k)) * 1e-4
+        tau = 0.02
+        estimates = 0.3 + rng.normal(0, np.sqrt(within + tau**2))
+        covered, taus = 0, []
+        for row in range(1000):
+            mean, low, high, tau_hat = random_effects(estimates[row][:, None], within[row][:, None])
+            covered += low[0] <= 0.3 <= high[0]
+            taus.append(tau_hat[0])
+        assert 900 <= covered <= 990, (k, covered)
+        if k == 6:
+            assert np.mean(taus) == pytest.approx(tau, rel=0.25)
+
+
+@pytest.mark.slow
+def test_interval_covers_between_field_variation_with_five_fields():
+    # Controls whose leak differs between fields (SD 10 % of 0.3): with 5 fields the 95 % interval of
+    # the coefficient covers 0.3 in 90-99 of 100 seeded repetitions (binomial range, common practice).
+    from pair_scenes import control_fields
+
+    inside = 0
+    for repeat in range(100):
+        fields = control_fields(repeat * 100 + 5, 5, leak=0.3, between_sd=0.1)
+        matrix = measure_matrix({"A": fields}, settings=MeasureSettings(n_boot=400, seed=repeat))
+        inside += matrix.ci95_low[1, 0] <= 0.3 <= matrix.ci95_high[1, 0]
+    assert 90 <= inside <= 99
+    assert "between-field variation" in matrix.qc["labels"]["A"]["interval_covers"]
+
+
+def test_fewer_than_three_fields_say_what_the_interval_covers():
+    from pair_scenes import control_fields
+
+    matrix = measure_matrix({"A": control_fields(1, 2)}, settings=FAST)
+    assert matrix.qc["labels"]["A"]["interval_covers"].startswith("sampling error within the 2 fields only")
+    assert matrix.qc["between_field_sd"][1][0] is None
+
+
+def test_noise_model_from_controls_and_dark_frame(demo, scenario):
+    # The demo camera (invented scenario file): gain 2 ADU per electron, read noise 3 electrons, so
+    # variance = 36 ADU^2 + 2 x signal above the dark offset.
+    camera = scenario.raw["camera"]
+    matrix = measure_files(demo["controls"], dark=demo["dark"], settings=FAST)
+    noise = matrix.noise_model
+    assert noise["source"] == "controls and dark frame"
+    expected_read = (camera["gain_adu_per_electron"] * camera["read_noise_electrons"]) ** 2
+    np.testing.assert_allclose(noise["read_variance"], expected_read, rtol=0.1)
+    # Autofluorescence sits above the dark offset: its shot noise is part of the signal term.
+    np.testing.assert_allclose(noise["gain"], camera["gain_adu_per_electron"], rtol=0.1)
+
+
+def test_column_covariance_matches_the_intervals(demo):
+    matrix = measure_files(demo["controls"], unstained=demo["unstained"], settings=FAST)
+    for k, label in enumerate(matrix.labels):
+        covariance = matrix.column_covariance[k]
+        p = matrix.channels.index(matrix.primary[label])
+        assert np.allclose(covariance, covariance.T) and np.linalg.eigvalsh(covariance).min() > -1e-15
+        assert not covariance[p].any() and not covariance[:, p].any()
+        sd = (matrix.ci95_high[:, k] - matrix.ci95_low[:, k]) / (2 * 1.959963984540054)
+        np.testing.assert_allclose(np.sqrt(np.diag(covariance)), sd, rtol=1e-9)

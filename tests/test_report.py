@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 import json
 import os
 import re
@@ -42,7 +43,7 @@ def demo_report(tmp_path_factory):
 def test_report_shows_every_verdict_code_and_the_cautions(demo_report):
     text = demo_report.read_text(encoding="utf-8")
     for code, explanation in VERDICTS.items():
-        assert f">{code}</code>" in text and explanation in text
+        assert f">{code}</code>" in text and html.escape(explanation, quote=True) in text
     assert "bleed-through-only" in text and "Cautions" in text and "not molecular" in text
     # Self-contained: no resource from anywhere but the file itself (links are allowed).
     sources = re.findall(r"""(?:src|href)=['"]([^'"]+)""", text)

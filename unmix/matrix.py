@@ -112,6 +112,29 @@ class BleedThroughMatrix:
         """2-norm condition number of M (ratio of extreme singular values)."""
         return float(np.linalg.cond(self.matrix))
 
+    def draws(self, n: int, rng) -> np.ndarray | None:
+        """`n` draws (n, C, K) of the matrix from its measurement uncertainty, or None without one.
+
+        Columns are drawn independently (each comes from its own control),
+        within a column jointly from its covariance; without a covariance
+        (version 1 files), each coefficient independently from a normal whose
+        95 % interval is the stored one. Primary coefficients stay 1.
+        """
+        if self.column_covariance is not None:
+            draws = np.repeat(self.matrix[None], n, axis=0)
+            for k in range(len(self.labels)):
+                values, vectors = np.linalg.eigh(self.column_covariance[k])
+                root = vectors * np.sqrt(np.clip(values, 0, None))
+                draws[:, :, k] += rng.standard_normal((n, len(self.channels))) @ root.T
+        elif self.ci95_low is not None:
+            sd = (self.ci95_high - self.ci95_low) / (2 * 1.959963984540054)
+            draws = self.matrix[None] + sd[None] * rng.standard_normal((n,) + self.matrix.shape)
+        else:
+            return None
+        for k, label in enumerate(self.labels):
+            draws[:, self.channels.index(self.primary[label]), k] = 1.0
+        return draws
+
     def column(self, label: str) -> np.ndarray:
         return self.matrix[:, self.labels.index(label)]
 

@@ -29,6 +29,7 @@ VERDICT_LOOK = {
     "persists": ("✓", "#56B4E9"),
     "revealed": ("▲", "#CC79A7"),
     "none": ("○", "#BBBBBB"),
+    "inconclusive": ("?", "#FFFFFF"),
 }
 
 

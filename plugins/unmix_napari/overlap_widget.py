@@ -83,7 +83,7 @@ class OverlapWidget(QWidget):
 
     @guarded
     def compute(self):
-        from unmix.coloc.verdict import analyse_pair, pair_planes, unmix_plane
+        from unmix.coloc.verdict import judge_pair, pair_planes, prepare_image
 
         shared = session(self.viewer)
         matrix = shared.matrix
@@ -118,11 +118,10 @@ class OverlapWidget(QWidget):
         rounds = self.rounds.value()
 
         def work():
-            abundances = unmix_plane(raw, matrix) if unmixed is None else unmixed  # once, for both uses
-            result = analyse_pair(raw, matrix, pair, unmixed=abundances, mask=mask, rounds=rounds)
-            planes = pair_planes(raw, matrix, pair, abundances)
-            keep = np.ones(raw.shape[1:], bool) if mask is None else mask
-            return result, [p[keep] for p in planes]
+            prepared = prepare_image(raw, matrix, unmixed=unmixed)
+            result = judge_pair(prepared, pair, mask=mask, rounds=rounds)
+            keep = prepared.valid if mask is None else prepared.valid & mask
+            return result, [p[keep] for p in pair_planes(prepared, pair)]
 
         self.runner.start(work, self._show, "Measuring overlap")
 
@@ -147,11 +146,13 @@ class OverlapWidget(QWidget):
                           ("manders_m1", "Manders M1"), ("manders_m2", "Manders M2"), ("overlap", "Manders overlap"),
                           ("icq", "Li's ICQ")):
             rows.append([name, value(getattr(result.before, key)), value(getattr(result.after, key))])
-        if result.after_pearson_interval:
-            low, high = result.after_pearson_interval
-            rows.append(["after r, matrix 95 %", "", f"{low:.3f} to {high:.3f}"])
-        if result.bleed_through_only_pearson:
-            rows.append(["before r from bleed-through alone", f"{result.bleed_through_only_pearson[0]:.3f}", ""])
+        corrected = result.after_corrected
+        rows.append(["Pearson r, noise-corrected", value(result.before_corrected.r), value(corrected.r)])
+        if corrected.interval:
+            low, high = corrected.interval
+            rows.append(["after r corrected, 95 %", "", f"{low:.3f} to {high:.3f}"])
+        if result.inflation is not None:
+            rows.append(["before r minus corrected after r", value(result.inflation), ""])
         rows.append(["pixels (saturated left out)", f"{result.pixels} ({result.saturated_pixels})", ""])
         fill_table(self.table, ["", "before", "after"], rows)
         figure = coloc_histograms((planes[0], planes[1]), (planes[2], planes[3]), result)

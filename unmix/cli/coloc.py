@@ -6,6 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..coloc.verdict import ROUNDS
 from ..errors import InputError
 from .args import add_image_options, check_output, name_list
 
@@ -16,15 +17,21 @@ def add_parsers(sub, common) -> None:
                            description="Measure colocalization of label pairs before and after unmixing and say "
                                        "whether the overlap is real or bleed-through.")
     coloc.add_argument("inputs", nargs="+", metavar="INPUT", help="raw multichannel plane(s) (C, Y, X)")
-    coloc.add_argument("--matrix", required=True, metavar="MATRIX.json")
+    coloc.add_argument("--matrix", required=True, metavar="MATRIX.json",
+                       help="the matrix file from unmix measure (or unmix predict)")
     coloc.add_argument("--labels", action="append", required=True, metavar="A,B", help="a pair of labels; repeatable")
     coloc.add_argument("--mask", metavar="PATH", help="measure only where this image is non-zero")
     coloc.add_argument("--objects", metavar="PATH", help="label image: one result per object (cell)")
-    coloc.add_argument("--unmixed", metavar="PATH", help="abundances from unmix apply (else unmixed here)")
-    coloc.add_argument("--flat", metavar="estimate|PATH", help="flat-field first: a flat image per channel, or "
-                                                                "'estimate' for a smooth illumination estimate")
-    coloc.add_argument("--rounds", type=int, default=200, help="randomisation rounds (200)")
-    coloc.add_argument("--seed", type=int, default=0, help="randomisation and simulation seed (0)")
+    coloc.add_argument("--unmixed", metavar="PATH",
+                       help="non-negative abundances from unmix apply, for the figures beside the verdict "
+                            "(else unmixed here)")
+    coloc.add_argument("--flat", metavar="estimate|PATH",
+                       help="divide each channel by its flat field before unmixing: an image with one flat per "
+                            "channel, or 'estimate' for a per-channel illumination estimate from all INPUTs "
+                            "(at least 3)")
+    coloc.add_argument("--rounds", type=int, default=ROUNDS,
+                       help=f"randomisation shifts ({ROUNDS}; all allowed shifts when there are fewer)")
+    coloc.add_argument("--seed", type=int, default=0, help="randomisation and matrix-draw seed (0)")
     coloc.add_argument("--alpha", type=float, default=0.05, help="significance level (0.05)")
     coloc.add_argument("--min-r", type=float, default=0.1, help="smallest Pearson r that counts as overlap (0.1)")
     coloc.add_argument("--thresholds", metavar="TA,TB", help="Manders thresholds of A and B (background-subtracted "
@@ -38,9 +45,6 @@ def add_parsers(sub, common) -> None:
     coloc.add_argument("--json", metavar="OUT.json", help="write the results as JSON")
     coloc.add_argument("--csv", metavar="OUT.csv", help="write one row per image x pair (x object)")
     coloc.add_argument("--histograms", metavar="DIR", help="write 2-D histograms before/after as PNG")
-    coloc.add_argument("--quick-objects", action="store_true",
-                       help="with --objects: per object, skip the bleed-through-only simulation and the "
-                            "matrix-uncertainty interval (much faster with many objects)")
     add_image_options(coloc)
     coloc.set_defaults(run=run_coloc)
 
@@ -90,12 +94,32 @@ def _psf_pixels(args, path: str) -> int:
     return max(1, math.ceil(0.51 * wavelength / 1000 / aperture / pixel))
 
 
+def _flats(args, matrix, inputs) -> np.ndarray | None:
+    """Per-channel flat fields: from the --flat image, or estimated from every input of the batch."""
+    if not args.flat:
+        return None
+    if args.flat != "estimate":
+        return _plane(args.flat, args, list(matrix.channels), "flat-field image")
+    from ..coloc.illumination import illumination_estimate
+
+    if len(inputs) < 3:
+        raise InputError(f"--flat estimate: needs at least 3 INPUT images of the batch (got {len(inputs)}): "
+                         "structures average out only over several fields; give flat-field images instead")
+    planes = [_plane(path, args, list(matrix.channels)) for path in inputs]
+    if len({p.shape for p in planes}) > 1:
+        raise InputError("--flat estimate: the INPUT images differ in size; give flat-field images instead")
+    try:
+        return illumination_estimate(planes, matrix.background)
+    except ValueError as exc:
+        raise InputError(f"--flat estimate: {exc}; give flat-field images instead") from None
+
+
 def run_coloc(args) -> int:
     import csv
     import io
     import json
 
-    from ..coloc.verdict import MATRIX_DRAWS, SIMULATIONS, analyse_pair, unmix_plane
+    from ..coloc.verdict import VERDICTS, judge_pair, prepare_image, warn_about_matrix
     from ..io.atomic import write_text_atomic
     from ..matrix import load_matrix
     from ..report.summary import table
@@ -115,6 +139,8 @@ def run_coloc(args) -> int:
         raise InputError("--unmixed: give it with a single INPUT (or let coloc unmix each input)")
     if not 0 < args.alpha < 1:
         raise InputError(f"--alpha {args.alpha}: give a level between 0 and 1, e.g. 0.05")
+    if not -1 <= args.min_r <= 1:
+        raise InputError(f"--min-r {args.min_r}: give a correlation between -1 and 1, e.g. 0.1")
     if args.rounds < 19:
         raise InputError(f"--rounds {args.rounds}: give at least 19 (p cannot go below 1 / (rounds + 1))")
     thresholds = None
@@ -130,13 +156,13 @@ def run_coloc(args) -> int:
     for option, value in (("--json", args.json), ("--csv", args.csv)):
         if value:
             outputs[option] = check_output(value, inputs, option)
+    warn_about_matrix(matrix)
+    flats = _flats(args, matrix, args.inputs)
     results = []
     for path in args.inputs:
         raw = _plane(path, args, list(matrix.channels))
-        if args.unmixed:
-            unmixed = _plane(args.unmixed, args, list(matrix.labels), "unmixed image")
-        else:  # once per image, shared by every pair and object
-            unmixed = unmix_plane(raw, matrix)
+        unmixed = _plane(args.unmixed, args, list(matrix.labels), "unmixed image") if args.unmixed else None
+        image = prepare_image(raw, matrix, flat=flats, unmixed=unmixed, seed=args.seed)
         mask = _mask_plane(args.mask, raw.shape[1:], "--mask").astype(bool) if args.mask else None
         if mask is not None and not mask.any():
             raise InputError(f"--mask {args.mask}: selects no pixel; give a mask with pixels set")
@@ -148,18 +174,11 @@ def run_coloc(args) -> int:
                 raise InputError(f"--objects {args.objects}: holds no object (all 0); give a label image")
             regions = [(i, (objects == i) if mask is None else (objects == i) & mask) for i in ids]
         min_shift = _psf_pixels(args, path) if args.psf else None
-        flat = None
-        if args.flat and args.flat != "estimate":
-            flat = _plane(args.flat, args, list(matrix.channels), "flat-field image")
         for pair in pairs:
             for object_id, region in regions:
-                quick = object_id is not None and args.quick_objects
-                result = analyse_pair(raw, matrix, pair, unmixed=unmixed, mask=region, rounds=args.rounds,
-                                      seed=args.seed, alpha=args.alpha, min_r=args.min_r, flat=flat,
-                                      estimate_flat=args.flat == "estimate", simulations=0 if quick else SIMULATIONS,
-                                      matrix_draws=0 if quick else MATRIX_DRAWS,
-                                      thresholds=thresholds, threshold_method=args.threshold_method,
-                                      min_shift=min_shift)
+                result = judge_pair(image, pair, mask=region, rounds=args.rounds, seed=args.seed, alpha=args.alpha,
+                                    min_r=args.min_r, thresholds=thresholds, threshold_method=args.threshold_method,
+                                    min_shift=min_shift)
                 histogram = None
                 if args.histograms:
                     from ..coloc.verdict import pair_planes
@@ -168,8 +187,8 @@ def run_coloc(args) -> int:
 
                     folder = Path(args.histograms)
                     folder.mkdir(parents=True, exist_ok=True)
-                    before_a, before_b, after_a, after_b = pair_planes(raw, matrix, pair, unmixed)
-                    keep = np.ones(raw.shape[1:], bool) if region is None else region
+                    before_a, before_b, after_a, after_b = pair_planes(image, pair)
+                    keep = image.valid if region is None else image.valid & region
                     stem = safe_file_name(Path(path).name.split(".")[0] + f"_{pair[0]}-{pair[1]}" + (
                         f"_object{object_id}" if object_id is not None else ""))
                     histogram = save_png(coloc_histograms((before_a[keep], before_b[keep]),
@@ -179,7 +198,7 @@ def run_coloc(args) -> int:
     records = []
     for path, object_id, result, histogram in results:
         record = result.to_dict()
-        record.update({"image": str(path), "object": object_id})
+        record.update({"image": str(path), "object": object_id, "matrix_sha256": matrix.sha256()})
         if histogram is not None:
             record["histogram"] = str(histogram)
         records.append(record)
@@ -192,15 +211,20 @@ def run_coloc(args) -> int:
         writer = csv.writer(out, lineterminator="\n")
         keys = ("pearson", "p_value", "spearman", "manders_m1", "manders_m2", "icq", "overlap", "n_pixels")
         writer.writerow(["image", "label_a", "label_b", "object", "verdict"] + [f"before_{k}" for k in keys]
-                        + [f"after_{k}" for k in keys] + ["after_pearson_low", "after_pearson_high",
-                                                           "saturated_pixels", "flat_field", "note"])
+                        + [f"after_{k}" for k in keys] + ["after_pearson_noise_corrected", "after_corrected_low",
+                                                           "after_corrected_high", "inflation", "saturated_pixels",
+                                                           "flat_field", "noise_model", "note"])
+
+        def blank(value):
+            return "" if value is None else value
+
         for record in records:
-            interval = record["after_pearson_interval"] or ["", ""]
-            writer.writerow([record["image"], *record["pair"], "" if record["object"] is None else record["object"],
-                             record["verdict"]] + ["" if record["before"][k] is None else record["before"][k]
-                                                   for k in keys]
-                            + ["" if record["after"][k] is None else record["after"][k] for k in keys]
-                            + [*interval, record["saturated_pixels"], record["flat_field"],
+            interval = record["after"]["pearson_noise_corrected_interval"] or ["", ""]
+            writer.writerow([record["image"], *record["pair"], blank(record["object"]), record["verdict"]]
+                            + [blank(record["before"][k]) for k in keys] + [blank(record["after"][k]) for k in keys]
+                            + [blank(record["after"]["pearson_noise_corrected"]), *interval,
+                               blank(record["inflation"]), record["saturated_pixels"], record["flat_field"],
+                               record["noise_model"],
                                "; ".join(n for n in (record["before"]["note"], record["after"]["note"]) if n)])
         write_text_atomic(outputs["--csv"], out.getvalue())
     if not args.quiet:
@@ -209,16 +233,19 @@ def run_coloc(args) -> int:
                 return "undefined"
             return f"{c['pearson']:.3f} (p {c['p_value']:.3g})" if c["p_value"] is not None else f"{c['pearson']:.3f}"
 
-        rows = [["image", "pair", "object", "Pearson r before", "Pearson r after", "after 95 % (matrix)", "verdict"]]
+        def corrected(c):
+            if c["pearson_noise_corrected"] is None:
+                return "undefined"
+            interval = c["pearson_noise_corrected_interval"]
+            return (f"{c['pearson_noise_corrected']:.3f}" + (f" [{interval[0]:.3f}, {interval[1]:.3f}]"
+                                                             if interval else "") + f" (p {c['p_value']:.3g})")
+
+        rows = [["image", "pair", "object", "Pearson r before", "r after, noise-corrected [95 %]", "verdict"]]
         for record in records:
-            interval = record["after_pearson_interval"]
             rows.append([Path(record["image"]).name, "/".join(record["pair"]),
                          "-" if record["object"] is None else str(record["object"]), cell(record["before"]),
-                         cell(record["after"]), "-" if not interval else f"{interval[0]:.3f} to {interval[1]:.3f}",
-                         record["verdict"]])
+                         corrected(record["after"]), record["verdict"]])
         print(table(rows))
-        from ..coloc.verdict import VERDICTS
-
         print()
         for verdict in dict.fromkeys(r["verdict"] for r in records):
             print(f"{verdict}: {VERDICTS[verdict]}")
@@ -226,4 +253,3 @@ def run_coloc(args) -> int:
         for note in sorted(notes):
             print(f"note: {note}")
     return 0
-

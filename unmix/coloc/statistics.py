@@ -249,30 +249,70 @@ def shifted_correlations(a, b, mask=None) -> np.ndarray:
         return cross / np.sqrt(variance_a * variance_b)
 
 
-def randomisation_p_value(a, b, mask=None, *, rounds: int = 200, seed: int = 0, min_shift: int | None = None,
-                          observed: float | None = None) -> tuple[float | None, int]:
-    """One-sided p-value for positive association, and the shift length used.
+@dataclass(frozen=True)
+class Randomisation:
+    """A randomisation test's outcome: p, the shortest shift allowed, how many shifts were used and
+    whether they were all the allowed ones (then p has no Monte-Carlo error)."""
+
+    p_value: float | None
+    min_shift: int
+    shifts: int
+    exhaustive: bool
+
+    def margin(self, alpha: float) -> float:
+        """Twice the Monte-Carlo standard error of p near `alpha` (0 when every shift was used)."""
+        return 0.0 if self.exhaustive or not self.shifts else 2 * float(np.sqrt(alpha * (1 - alpha) / self.shifts))
+
+
+def randomisation_test(a, b, mask=None, *, rounds: int = 1000, seed: int = 0, min_shift: int | None = None,
+                       observed: float | None = None, spread: float = 0.0) -> Randomisation:
+    """One-sided test for positive association of A and B by toroidal shifts of B.
 
     Shifts are drawn uniformly among the (dy, dx) whose larger component is at
-    least `min_shift` (default: the larger correlation length of A and B).
+    least `min_shift` (default: the larger correlation length of A and B);
+    when there are no more allowed shifts than `rounds`, every one is used.
+    `observed` is the statistic to compare with the shifted Pearson r's
+    (default: the plain r of A and B).
+
+    `spread` is the standard deviation of an error that the observed
+    statistic carries and shifted copies do not (for unmixed labels: the
+    matrix's measurement error, which leaves a little of one label in the
+    other wherever it is - an artefact that moves with the label, so no
+    shift can show it). Each shifted r then counts with its probability of
+    reaching the observed one once that normal error is added:
+    p = (1 + sum Phi((r_s - observed) / spread)) / (N + 1), which is the
+    plain count when `spread` is 0.
     """
     a = np.asarray(a, dtype=np.float64)
     b = np.asarray(b, dtype=np.float64)
     if observed is None:
         observed = pearson(a, b, mask)
-    if observed is None:
-        return None, 0
     length = min_shift or max(correlation_length(a, mask), correlation_length(b, mask))
+    if observed is None:
+        return Randomisation(None, length, 0, False)
     height, width = a.shape
     dy = np.minimum(np.arange(height), height - np.arange(height))[:, None]
     dx = np.minimum(np.arange(width), width - np.arange(width))[None, :]
     allowed = np.flatnonzero((np.maximum(dy, dx) >= length).ravel())
     if allowed.size == 0:
-        return None, length
+        return Randomisation(None, length, 0, False)
     r = shifted_correlations(a, b, mask).ravel()
-    chosen = np.random.default_rng(seed).choice(allowed, size=rounds, replace=allowed.size < rounds)
-    reached = int(np.count_nonzero(r[chosen] >= observed - 1e-12))
-    return (1 + reached) / (rounds + 1), length
+    exhaustive = allowed.size <= rounds
+    chosen = allowed if exhaustive else np.random.default_rng(seed).choice(allowed, size=rounds, replace=False)
+    if spread > 0:
+        from scipy.special import ndtr
+
+        reached = float(ndtr((r[chosen] - observed) / spread).sum())
+    else:
+        reached = int(np.count_nonzero(r[chosen] >= observed - 1e-12))
+    return Randomisation((1 + reached) / (chosen.size + 1), length, int(chosen.size), exhaustive)
+
+
+def randomisation_p_value(a, b, mask=None, *, rounds: int = 200, seed: int = 0, min_shift: int | None = None,
+                          observed: float | None = None) -> tuple[float | None, int]:
+    """p-value and the shift length of :func:`randomisation_test`."""
+    test = randomisation_test(a, b, mask, rounds=rounds, seed=seed, min_shift=min_shift, observed=observed)
+    return test.p_value, test.min_shift
 
 
 # --- everything for one pair --------------------------------------------------

@@ -71,22 +71,24 @@ def run_demo(outdir, out=None) -> dict:
 
 def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdir: Path, out) -> list[dict]:
     """Before/after colocalization of the demo's two pairs, with histograms; records as coloc writes them."""
-    from ..coloc.verdict import analyse_pair, pair_planes
+    from ..coloc.verdict import judge_pair, pair_planes, prepare_image
     from ..io.atomic import safe_file_name, write_text_atomic
     from ..io.images import read_image
     from ..report.plots import coloc_histograms, save_png
 
     raw = np.asarray(read_image(sample).select_channels(matrix.channels).data)
     unmixed = np.asarray(read_image(unmixed_path).select_channels(matrix.labels).data)
+    image = prepare_image(raw, matrix, unmixed=unmixed)
     records = []
     print("\nColocalization before and after unmixing:", file=out)
     for role in ("independent_but_bleeding", "truly_overlapping"):
         pair = tuple(pairs[role])
-        result = analyse_pair(raw, matrix, pair, unmixed=unmixed)
-        before_a, before_b, after_a, after_b = pair_planes(raw, matrix, pair, unmixed)
+        result = judge_pair(image, pair)
+        before_a, before_b, after_a, after_b = pair_planes(image, pair)
         histogram = save_png(coloc_histograms((before_a, before_b), (after_a, after_b), result),
                              outdir / safe_file_name(f"coloc_{pair[0]}-{pair[1]}.png"))
-        record = {**result.to_dict(), "image": str(sample), "object": None, "histogram": str(histogram.resolve())}
+        record = {**result.to_dict(), "image": str(sample), "object": None, "matrix_sha256": matrix.sha256(),
+                  "histogram": str(histogram.resolve())}
         records.append(record)
         print(f"  {pair[0]} / {pair[1]} ({role.replace('_', ' ')}): Pearson r {result.before.pearson:.3f} before, "
               f"{result.after.pearson:.3f} after: {result.verdict}", file=out)

@@ -25,12 +25,28 @@ axes and unequal (shot-noise) variances.
 
 Uncertainty
 -----------
-95 % percentile intervals from a two-stage bootstrap: fields are resampled
-(when there are several), then square spatial blocks within each field, since
-neighbouring pixels are correlated by the structures and the blur. Because
-``k`` independent block resamples of one field add up to one multinomial
-draw of ``k`` times as many blocks, each replicate is a single weighted sum
-of block statistics.
+Fields (and specimens) are the unit of replication: coefficients differ
+more between fields than pixels within a field suggest. With three or more
+fields per label, each field gets its own estimate and its own block
+bootstrap variance, and the interval is that of a random-effects
+meta-analysis of the fields: the between-field variance by DerSimonian and
+Laird, the interval by Hartung and Knapp (a t-interval on k - 1 degrees of
+freedom, never narrower than the plain random-effects one). With one or two
+fields the between-field variance cannot be estimated; the interval is then
+the 95 % percentile interval of a two-stage bootstrap (fields resampled,
+then square spatial blocks within each field, since neighbouring pixels are
+correlated by the structures and the blur) and covers sampling error within
+those fields only, which the matrix file says. Because ``k`` independent
+block resamples of one field add up to one multinomial draw of ``k`` times
+as many blocks, each replicate is a single weighted sum of block statistics.
+
+Each label's column of coefficients is stored with its covariance (the
+bootstrap's correlation between channels, scaled to the interval widths),
+so that later stages can draw whole matrices.
+
+The detector's noise line per channel (variance = read variance + gain x
+signal, :mod:`unmix.measure.noise`) is fitted on a window of every control
+field, with the read variance from the dark frame when one is given.
 
 References
 ----------
@@ -44,6 +60,13 @@ References
    14:1171-1179 (1986): non-overlapping block resampling (from memory).
 .. [4] B. Efron and R. Tibshirani, *An Introduction to the Bootstrap*,
    Chapman & Hall (1993): percentile intervals (from memory).
+.. [5] R. DerSimonian and N. Laird, "Meta-analysis in clinical trials",
+   Control. Clin. Trials 7:177-188 (1986).
+.. [6] J. Hartung and G. Knapp, "A refined method for the meta-analysis of
+   controlled clinical trials with binary outcome", Stat. Med. 20:3875-3889
+   (2001); the ad hoc variance correction (never below the random-effects
+   variance): C. Röver, G. Knapp and T. Friede, BMC Med. Res. Methodol.
+   15:99 (2015) (from memory).
 """
 
 from __future__ import annotations
@@ -137,6 +160,7 @@ class _FieldResult:
     n_valid: int
     noise: float
     shift: np.ndarray = field(default_factory=lambda: np.zeros((0, 2)))  # per channel (dy, dx)
+    noise_groups: list = field(default_factory=list)  # per channel: (levels, variances, counts)
 
 
 def _as_field_images(source, read_options: dict) -> list[Image]:
@@ -271,6 +295,8 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
         reference = crop(primary)
         for c in range(n_channels):
             shift[c] = 0.0 if c == primary else _registration_shift(reference, crop(c))
+    noise_groups = _noise_groups(stack, background, levels, stats[:, _N].reshape(blocks_y, blocks_x),
+                                 settings.block_size)
     stats = _merge_blocks(stats, blocks_y, blocks_x, settings.max_blocks)
     stats = stats[stats[:, _N] > 0]
 
@@ -278,8 +304,26 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
         source=image.name, primary=primary, levels=levels, background=background, summaries=summaries,
         block_stats=stats, n_signal=int(n_signal), n_usable=n_usable, n_nonfinite=int(n_nonfinite),
         saturated_signal=np.asarray(saturated_signal), channel_sums=np.asarray(channel_sums),
-        n_valid=int(n_valid), noise=float(noise), shift=shift,
+        n_valid=int(n_valid), noise=float(noise), shift=shift, noise_groups=noise_groups,
     )
+
+
+_NOISE_WINDOW = 384
+
+
+def _noise_groups(stack, background, levels, usable_per_block, block_size) -> list:
+    """Noise variance against level for every channel on one window of the field (its middle plane),
+    centred on the most signal: enough levels for the noise line at a fraction of the field's cost."""
+    from .noise import level_variances
+
+    n_planes, ny, nx = stack.shape[1:]
+    rows, cols = _crop_for_registration((ny, nx), usable_per_block, block_size, _NOISE_WINDOW)
+    groups = []
+    for c in range(stack.shape[0]):
+        window = stack[c, n_planes // 2, rows, cols]
+        keep = np.isfinite(window) & (window < levels[c])
+        groups.append(level_variances([np.where(keep, window - background[c], 0.0)], [keep]))
+    return groups
 
 
 def _centred(sums: np.ndarray, n_channels: int) -> dict:
@@ -360,6 +404,90 @@ def _bootstrap(fields: list[_FieldResult], n_channels: int, settings: MeasureSet
     return _slopes(replicate_sums, n_channels)
 
 
+def _field_replicates(result: _FieldResult, n_channels: int, n_boot: int, rng) -> np.ndarray:
+    """Block-bootstrap replicates (n_boot, C) of one field's slopes."""
+    from .kernels import block_weights
+
+    n_blocks = result.block_stats.shape[0]
+    random_bits = rng.bit_generator.random_raw(n_boot * n_blocks // 2 + 1)
+    weights = block_weights(np.ones(n_boot, dtype=np.int64), n_blocks, random_bits)
+    return _slopes([weights @ result.block_stats], n_channels)["slope"]
+
+
+_Z95 = 1.959963984540054
+
+
+def random_effects(estimates: np.ndarray, variances: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray,
+                                                                           np.ndarray]:
+    """Random-effects pooling of k field estimates, per coefficient (columns).
+
+    Parameters
+    ----------
+    estimates, variances : ndarray (k, C)
+        Each field's estimate and its within-field variance.
+
+    Returns
+    -------
+    mean, low, high, tau : ndarray (C,)
+        The pooled estimate, its 95 % Hartung-Knapp interval (t on k - 1
+        degrees of freedom, variance never below the plain random-effects
+        one) and the between-field standard deviation (DerSimonian-Laird).
+    """
+    from scipy import stats
+
+    estimates, variances = np.asarray(estimates, float), np.maximum(np.asarray(variances, float), 1e-300)
+    k = estimates.shape[0]
+    w = 1 / variances
+    fixed = (w * estimates).sum(0) / w.sum(0)
+    q = (w * (estimates - fixed) ** 2).sum(0)
+    tau2 = np.maximum(0.0, (q - (k - 1)) / (w.sum(0) - (w**2).sum(0) / w.sum(0)))
+    w_star = 1 / (variances + tau2)
+    mean = (w_star * estimates).sum(0) / w_star.sum(0)
+    hartung_knapp = (w_star * (estimates - mean) ** 2).sum(0) / ((k - 1) * w_star.sum(0))
+    variance = np.maximum(hartung_knapp, 1 / w_star.sum(0))
+    half = stats.t.ppf(0.975, k - 1) * np.sqrt(variance)
+    return mean, mean - half, mean + half, np.sqrt(tau2)
+
+
+def _column_covariance(replicates: np.ndarray, low: np.ndarray, high: np.ndarray, primary: int) -> np.ndarray:
+    """Covariance of one column: the bootstrap replicates' correlations, scaled so that each
+    coefficient's standard deviation matches its 95 % interval's half-width / 1.96."""
+    n_channels = low.size
+    covariance = np.zeros((n_channels, n_channels))
+    others = [c for c in range(n_channels) if c != primary]
+    if not others:
+        return covariance
+    sample = replicates[:, others]
+    sample = sample[np.all(np.isfinite(sample), axis=1)]
+    sd = (high[others] - low[others]) / (2 * _Z95)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        correlation = np.corrcoef(sample, rowvar=False) if sample.shape[0] > 2 else np.eye(len(others))
+    correlation = np.atleast_2d(np.nan_to_num(correlation, nan=0.0))
+    np.fill_diagonal(correlation, 1.0)
+    covariance[np.ix_(others, others)] = correlation * np.outer(sd, sd)
+    return covariance
+
+
+def _noise_model(results: dict, n_channels: int, dark_read: np.ndarray | None) -> dict | None:
+    """Per-channel noise lines from the groups of every control field (see :mod:`.noise`)."""
+    from .noise import fit_noise_line
+
+    reads, gains = [], []
+    for c in range(n_channels):
+        groups = [f.noise_groups[c] for fields in results.values() for f in fields if f.noise_groups]
+        if not groups:
+            return None
+        levels, variances, counts = (np.concatenate([g[i] for g in groups]) for i in range(3))
+        line = fit_noise_line(levels, variances, counts,
+                              read_variance=None if dark_read is None else float(dark_read[c]))
+        if line is None:
+            return None
+        reads.append(line.read_variance)
+        gains.append(line.gain)
+    return {"read_variance": np.array(reads), "gain": np.array(gains),
+            "source": "controls" if dark_read is None else "controls and dark frame"}
+
+
 def _finite_or_none(value):
     value = float(value)
     return value if math.isfinite(value) else None
@@ -437,6 +565,14 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         background_source = "dark"
         reference = _matched(_as_field_images(dark, read_options)[0], channels, "the dark frame")
     fixed_background = reference_levels(_stack(reference), reference.name) if reference is not None else None
+    # The dark frame fixes the variance at zero signal only when its offset is the background
+    # subtracted; above an unstained specimen's level, autofluorescence adds its own shot noise.
+    dark_read = None
+    if dark is not None and unstained is None:
+        from .noise import dark_read_variance
+
+        dark_stack = _stack(_matched(_as_field_images(dark, read_options)[0], channels, "the dark frame"))
+        dark_read = np.array([dark_read_variance(dark_stack[c, dark_stack.shape[1] // 2]) for c in range(n_channels)])
     fixed_levels = per_channel_levels(saturation, n_channels, "--saturation")
 
     def field_images(label):
@@ -479,9 +615,10 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
 
     matrix = np.zeros((n_channels, len(labels)))
     low, high = np.zeros_like(matrix), np.zeros_like(matrix)
+    covariance = np.zeros((len(labels), n_channels, n_channels))
     grids = {name: np.full_like(matrix, np.nan) for name in
              ("r_squared", "intercept", "slope_dim", "slope_bright", "saturated_fraction",
-              "registration_shift_px")}
+              "registration_shift_px", "between_field_sd")}
     per_label = {}
     primaries = {}
     flags = []
@@ -540,9 +677,23 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             lo, hi = np.nanpercentile(replicates["slope"], [2.5, 97.5], axis=0)
             bow_lo, bow_hi = np.nanpercentile(replicates["slope_bright"] - replicates["slope_dim"],
                                               [2.5, 97.5], axis=0)
+        if len(fields) >= 3:
+            per_field = np.array([_slopes([f.block_stats.sum(axis=0)], n_channels)["slope"] for f in fields])
+            within = np.array([np.nanvar(_field_replicates(f, n_channels, max(200, settings.n_boot // 5), rng),
+                                         axis=0, ddof=1) for f in fields])
+            others = [c for c in range(n_channels) if c != p]
+            slope, lo, hi = np.ones(n_channels), np.ones(n_channels), np.ones(n_channels)
+            slope[others], lo[others], hi[others], tau = random_effects(per_field[:, others], within[:, others])
+            grids["between_field_sd"][others, k] = tau
+            covers = (f"sampling error and between-field variation ({len(fields)} fields, random effects, "
+                      "Hartung-Knapp interval)")
+        else:
+            covers = (f"sampling error within the {len(fields)} field{'s' if len(fields) > 1 else ''} only "
+                      "(between-field variation needs at least 3 fields)")
         lo, hi = np.fmin(lo, slope), np.fmax(hi, slope)
         lo[p] = hi[p] = 1.0
         matrix[:, k], low[:, k], high[:, k] = slope, lo, hi
+        covariance[k] = _column_covariance(replicates["slope"], lo, hi, p)
         for name in ("r_squared", "intercept", "slope_dim", "slope_bright"):
             grids[name][:, k] = estimates[name]
         grids["saturated_fraction"][:, k] = sum(f.saturated_signal for f in fields) / max(n_signal, 1)
@@ -583,6 +734,7 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             "brightness": {channels[c]: _finite_or_none(brightness[c]) for c in range(n_channels)},
             "noise_sd": _finite_or_none(np.mean([f.noise for f in fields])),
             "blocks": int(sum(f.block_stats.shape[0] for f in fields)),
+            "interval_covers": covers,
         }
 
     for message in flags:
@@ -606,11 +758,14 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         "saturated_fraction": "share of the label's signal pixels saturated in this channel (excluded)",
         "registration_shift_px": "shift of the cross-correlation peak between this channel and the primary "
                                  "(null where the leak is too small to measure it)",
+        "between_field_sd": "standard deviation of the coefficient between fields (random effects; null with "
+                            "fewer than 3 fields)",
     }
     return BleedThroughMatrix(
         kind="measured", channels=tuple(channels), labels=tuple(labels), primary=primaries,
         matrix=matrix, ci95_low=low, ci95_high=high, background=np.asarray(background, dtype=float),
-        background_source=background_source, saturation=np.asarray(levels, dtype=float), qc=qc,
+        background_source=background_source, saturation=np.asarray(levels, dtype=float),
+        noise_model=_noise_model(results, n_channels, dark_read), column_covariance=covariance, qc=qc,
         provenance={"settings": settings.__dict__.copy()},
     )
 

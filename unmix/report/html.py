@@ -26,7 +26,10 @@ CAUTIONS = (
     "detector voltage).",
     "Saturated pixels are excluded, not corrected.",
     "Unmixing raises noise (the noise penalty says by how much), and the unmixed noise of two labels is "
-    "negatively correlated: judge colocalization after unmixing with that in mind.",
+    "correlated: the after-r is corrected for it, and its interval covers the region as imaged, not the "
+    "variation between cells or specimens.",
+    "A verdict is only as good as the matrix and the noise model behind it: measure the matrix from at least "
+    "three control fields per label, with a dark frame.",
     "Colocalization coefficients measure co-occurrence and correlation at optical resolution, not molecular "
     "interaction.",
     "Keep the raw data; unmix never modifies its inputs.",
@@ -39,6 +42,14 @@ REFERENCES = (
     ("S. Bolte & F. P. Cordelières (2006), J. Microsc. 224:213", "https://doi.org/10.1111/j.1365-2818.2006.01706.x"),
     ("B. Phipson & G. K. Smyth (2010), Stat. Appl. Genet. Mol. Biol. 9:39", "https://doi.org/10.2202/1544-6115.1585"),
     ("C. L. Lawson & R. J. Hanson (1974), Solving Least Squares Problems", None),
+    ("C. Spearman (1904), Am. J. Psychol. 15:72 (correction for attenuation)", None),
+    ("J. Adler, S. N. Pagakis & I. Parmryd (2008), J. Microsc. 230:121 (noise-corrected correlation)", None),
+    ("M. Roederer (2001), Cytometry 45:194 (compensation and its spread)", None),
+    ("R. A. Fisher (1915), Biometrika 10:507 (z transform of r)", None),
+    ("K. Pearson (1897), Proc. R. Soc. Lond. 60:489 (spurious correlation of ratios)", None),
+    ("R. DerSimonian & N. Laird (1986), Control. Clin. Trials 7:177; J. Hartung & G. Knapp (2001), Stat. Med. "
+     "20:3875 (random-effects intervals over control fields)", None),
+    ("A. Foi et al. (2008), IEEE Trans. Image Process. 17:1737 (noise line from one image)", None),
     ("D. B. Siano & D. E. Metzler (1969), J. Chem. Phys. 51:1856", "https://doi.org/10.1063/1.1672270"),
 )
 
@@ -205,17 +216,27 @@ def _coloc_section(record: dict) -> str:
                  *(_e(", ".join(f"{t:.1f}" for t in th)) if th else "-" for th in thresholds)])
     text = [f"<h3>{_e(heading)}</h3>",
             f"<p>Verdict: <code class='verdict'>{_e(record['verdict'])}</code>: {_e(VERDICTS[record['verdict']])}.</p>",
-            _table(["coefficient", "before (primary channels)", "after (unmixed)"], rows)]
-    interval = record.get("after_pearson_interval")
-    expected = record.get("bleed_through_only_pearson")
+            _table(["coefficient", "before (primary channels)", "after (least-squares abundances)"], rows)]
+    after = record["after"]
+    interval = after.get("pearson_noise_corrected_interval")
     details = []
-    if interval:
-        details.append(f"after-r over the matrix's 95 % intervals: {interval[0]:.3f} to {interval[1]:.3f}")
-    if expected:
-        details.append(f"before-r that bleed-through alone gives (simulated): {expected[0]:.3f} "
-                       f"({expected[1]:.3f} to {expected[2]:.3f})")
-    if record.get("difference_bound") is not None:
-        details.append(f"before minus after that unmixing alone explains, up to {record['difference_bound']:.3f}")
+    if after.get("pearson_noise_corrected") is not None:
+        details.append(f"after-r corrected for the noise of unmixing: {after['pearson_noise_corrected']:.3f}"
+                       + (f", 95 % interval {interval[0]:.3f} to {interval[1]:.3f} (detector noise, the matrix's "
+                          "measurement uncertainty and the noise model's; it covers this region as imaged, not "
+                          "how r varies between cells or specimens)" if interval else ""))
+    if record.get("inflation") is not None:
+        details.append(f"before-r minus corrected after-r (how much the raw channels overstate it): "
+                       f"{record['inflation']:.3f}")
+    if record.get("reason"):
+        details.append(f"why: {record['reason']}")
+    nonnegative = record.get("after_nonnegative") or {}
+    if nonnegative.get("pearson") is not None:
+        details.append(f"plain Pearson r of the non-negative abundances (the unmixed images): "
+                       f"{nonnegative['pearson']:.3f}; not used for the verdict (clipping at 0 biases it)")
+    if record.get("noise_model"):
+        details.append(f"detector noise model from: {record['noise_model']}; matrix uncertainty: "
+                       f"{record.get('matrix_uncertainty', 'not recorded')}")
     details.append(f"saturated pixels excluded: {record.get('saturated_pixels', 0)}; flat-field: "
                    f"{record.get('flat_field', 'none')}")
     notes = [n for n in (record["before"].get("note"), record["after"].get("note")) if n]

@@ -141,7 +141,7 @@ def coloc_histograms(before_pixels, after_pixels, result):
     a_label, b_label = result.pair
     for axis, (a, b), coefficients, title in (
             (axes[0], before_pixels, result.before, "before: primary channels, background subtracted"),
-            (axes[1], after_pixels, result.after, "after: unmixed abundances")):
+            (axes[1], after_pixels, result.after, "after: least-squares abundances")):
         a, b = np.asarray(a, dtype=float).ravel(), np.asarray(b, dtype=float).ravel()
         keep = np.isfinite(a) & np.isfinite(b)
         a, b = a[keep], b[keep]
@@ -161,7 +161,10 @@ def coloc_histograms(before_pixels, after_pixels, result):
             axis.set_ylim(b.min(), b.max())
         r = "undefined" if coefficients.pearson is None else f"{coefficients.pearson:.3f}"
         p = "-" if coefficients.p_value is None else f"{coefficients.p_value:.3g}"
-        axis.set_title(f"{title}\nPearson r = {r}, p = {p}", fontsize=9)
+        corrected = ""
+        if coefficients is result.after and result.after_corrected.r is not None:
+            corrected = f", noise-corrected {result.after_corrected.r:.3f}"
+        axis.set_title(f"{title}\nPearson r = {r}{corrected}, p = {p}", fontsize=9)
         axis.set_xlabel(a_label)
         axis.set_ylabel(b_label)
         axis.legend(fontsize=7, loc="upper left")
