@@ -9,8 +9,8 @@ small typed results and keep no state.
   pixels where B > t_B, divided by the sum of A over all pixels of the mask,
   with A clipped at 0 (scikit-image's ``manders_coloc_coeff`` convention and
   the command line's contract); M2 likewise with A and B swapped. Costes'
-  thresholded variant (tM1: the denominator is the sum of A above A's own
-  threshold) is reported separately, under its own name.
+  variant, "M1 above own threshold" (the denominator is the sum of A above
+  A's own threshold), is reported separately, under that name.
 - Manders overlap coefficient: sum(AB) / sqrt(sum(A^2) sum(B^2)).
 - Li's intensity correlation quotient: the share of pixels whose deviations
   from the means have the same sign, minus 0.5 (range -0.5..+0.5).
@@ -68,8 +68,8 @@ class Coefficients:
     manders_m2: float | None
     thresholds: tuple | None
     threshold_method: str
-    costes_tm1: float | None
-    costes_tm2: float | None
+    m1_above_own_threshold: float | None
+    m2_above_own_threshold: float | None
     overlap: float | None
     icq: float | None
     p_value: float | None
@@ -121,15 +121,16 @@ def manders(a, b, thresholds, mask=None) -> tuple[float | None, float | None]:
     return m1, m2
 
 
-def costes_thresholded_manders(a, b, thresholds, mask=None) -> tuple[float | None, float | None]:
-    """Costes' thresholded tM1, tM2: above both thresholds over above the own threshold."""
+def manders_above_own_thresholds(a, b, thresholds, mask=None) -> tuple[float | None, float | None]:
+    """M1 and M2 above their own thresholds (Costes et al. 2004): the sum of A above both thresholds
+    over the sum of A above A's own threshold; likewise for B."""
     a, b = _pixels(a, b, mask)
     a, b = np.maximum(a, 0), np.maximum(b, 0)
     t_a, t_b = thresholds
     above_a, above_b = a > t_a, b > t_b
-    tm1 = float(a[above_a & above_b].sum() / a[above_a].sum()) if a[above_a].sum() > 0 else None
-    tm2 = float(b[above_a & above_b].sum() / b[above_b].sum()) if b[above_b].sum() > 0 else None
-    return tm1, tm2
+    m1 = float(a[above_a & above_b].sum() / a[above_a].sum()) if a[above_a].sum() > 0 else None
+    m2 = float(b[above_a & above_b].sum() / b[above_b].sum()) if b[above_b].sum() > 0 else None
+    return m1, m2
 
 
 def overlap(a, b, mask=None) -> float | None:
@@ -346,13 +347,14 @@ def coefficients(a, b, mask=None, *, thresholds=None, threshold_method: str = "c
                                                                                float(values_b.max()))
             method = method if method.startswith("otsu") else ("otsu" if not note else "none")
     m1, m2 = manders(values_a, values_b, thresholds)
-    tm1, tm2 = costes_thresholded_manders(values_a, values_b, thresholds)
+    own_m1, own_m2 = manders_above_own_thresholds(values_a, values_b, thresholds)
     r = pearson(values_a, values_b)
     p = None
     if rounds and r is not None:
         p, _ = randomisation_p_value(a, b, mask, rounds=rounds, seed=seed, min_shift=min_shift, observed=r)
     return Coefficients(
         pearson=r, spearman=spearman(values_a, values_b) if r is not None else None, manders_m1=m1, manders_m2=m2,
-        thresholds=tuple(float(t) for t in thresholds), threshold_method=method, costes_tm1=tm1, costes_tm2=tm2,
+        thresholds=tuple(float(t) for t in thresholds), threshold_method=method,
+        m1_above_own_threshold=own_m1, m2_above_own_threshold=own_m2,
         overlap=overlap(values_a, values_b), icq=li_icq(values_a, values_b) if r is not None else None,
         p_value=p, n_pixels=n, note=note)

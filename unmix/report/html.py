@@ -204,10 +204,13 @@ def _coloc_section(record: dict) -> str:
     where = record.get("image", "")
     heading = f"{pair[0]} and {pair[1]}" + (f", {Path(str(where)).name}" if where else "") + (
         f", object {record['object']}" if record.get("object") is not None else "")
-    keys = [("pearson", "Pearson r"), ("p_value", "p (randomisation)"), ("spearman", "Spearman rho"),
-            ("manders_m1", "Manders M1"), ("manders_m2", "Manders M2"), ("costes_tm1", "Costes tM1 (thresholded)"),
-            ("costes_tm2", "Costes tM2 (thresholded)"), ("overlap", "Manders overlap"), ("icq", "Li's ICQ"),
-            ("n_pixels", "pixels")]
+    # Grouped by family: correlation, co-occurrence, significance.
+    keys = [("pearson", "correlation: Pearson r"), ("spearman", "correlation: Spearman rho"),
+            ("icq", "correlation: Li's ICQ"), ("overlap", "co-occurrence: Manders overlap"),
+            ("manders_m1", "co-occurrence: Manders M1"), ("manders_m2", "co-occurrence: Manders M2"),
+            ("m1_above_own_threshold", "co-occurrence: M1 above own threshold (Costes)"),
+            ("m2_above_own_threshold", "co-occurrence: M2 above own threshold (Costes)"),
+            ("p_value", "significance: p (randomisation)"), ("n_pixels", "pixels")]
     rows = [[_e(name), _number(record["before"].get(key)) if key != "n_pixels" else _e(record["before"].get(key)),
              _number(record["after"].get(key)) if key != "n_pixels" else _e(record["after"].get(key))]
             for key, name in keys]
