@@ -22,15 +22,19 @@ READ_NOISE = 3.0    # electrons
 BACKGROUND_E = 4.0  # electrons of diffuse background per pixel and channel
 
 
-def structure(rng, shape, psf_sigma: float = 1.5) -> np.ndarray:
-    """A non-negative structure image of peak about 1: spots and texture at least as large as the blur."""
+def structure(rng, shape, psf_sigma=1.5) -> np.ndarray:
+    """A non-negative structure image of peak about 1: spots and texture at least as large as the blur.
+
+    `shape` may be (Y, X) or (Z, Y, X); `psf_sigma` one number or one per axis (an anisotropic PSF).
+    """
+    sigma = np.broadcast_to(np.asarray(psf_sigma, dtype=float), (len(shape),))
     spots = np.zeros(shape)
-    count = shape[0] * shape[1] // 150
-    spots[rng.integers(0, shape[0], count), rng.integers(0, shape[1], count)] = rng.uniform(0.3, 1.0, count)
-    spots = ndimage.gaussian_filter(spots, max(psf_sigma, 2.0), mode="wrap")
+    count = int(np.prod(shape)) // 150
+    spots[tuple(rng.integers(0, n, count) for n in shape)] = rng.uniform(0.3, 1.0, count)
+    spots = ndimage.gaussian_filter(spots, np.maximum(sigma, 2.0), mode="wrap")
     texture = ndimage.gaussian_filter(rng.random(shape), 4.0, mode="wrap")
     image = spots / spots.std() + 0.5 * (texture - texture.min()) / texture.std()
-    image = ndimage.gaussian_filter(image, psf_sigma, mode="wrap")
+    image = ndimage.gaussian_filter(image, sigma, mode="wrap")
     return image / np.percentile(image, 99.9)
 
 
@@ -62,10 +66,11 @@ class PairScene:
 
 
 def pair_scene(seed: int, *, r: float = 0.0, peak_a: float = 1000.0, ratio: float = 1.0, leak: float = 0.3,
-               reverse_leak: float = 0.02, shape=(256, 256), psf_sigma: float = 1.5) -> PairScene:
+               reverse_leak: float = 0.02, shape=(256, 256), psf_sigma=1.5) -> PairScene:
     """Two labels A and B in two channels; `leak` of A into B's channel, `reverse_leak` of B into A's.
 
-    `peak_a` is A's peak in electrons, `ratio` B's peak relative to A's.
+    `peak_a` is A's peak in electrons, `ratio` B's peak relative to A's. A 3-D `shape` (Z, Y, X)
+    gives a z-stack, channels first (C, Z, Y, X).
     """
     rng = np.random.default_rng(seed)
     s1, s2 = structure(rng, shape, psf_sigma), structure(rng, shape, psf_sigma)

@@ -111,7 +111,7 @@ def test_unmix_and_overlap_widgets(qtbot, viewer, errors, tmp_path):
     overlap.label_a.setCurrentText("Fernlight")
     overlap.label_b.setCurrentText("Emberin")
     overlap.raw.setCurrentText("sample")
-    overlap.rounds.setValue(49)
+    overlap.rounds.setValue(199)
     overlap.compute()
     qtbot.waitUntil(lambda: not overlap.runner.busy and overlap.result is not None, timeout=WAIT_MS)
     assert overlap.result.verdict == "bleed-through-only"

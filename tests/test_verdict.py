@@ -40,12 +40,14 @@ def _corrected(r, interval):
     (_c(-0.5, 1.0), _c(-0.6, 1.0), _corrected(-0.6, (-0.65, -0.55)), "none"),  # exclusion is no overlap
     (_c(0.6, 0.001), _c(0.12, 0.01), _corrected(0.12, (0.05, 0.19)), "inconclusive"),  # interval crosses min_r
     (_c(0.6, 0.001), _c(0.3, 0.3), _corrected(0.3, (0.2, 0.4)), "inconclusive"),  # above min_r, not significant
-    (_c(0.6, 0.001), _c(0.3, 0.055), _corrected(0.3, (0.2, 0.4)), "inconclusive"),  # p within its MC error
+    (_c(0.6, 0.001), _c(0.3, 0.045), _corrected(0.3, (0.2, 0.4)), "inconclusive"),  # p's MC interval holds alpha
     (_c(0.6, 0.001), _c(None, None), _corrected(None, None), "inconclusive"),  # no variance above noise
     (_c(0.6, 0.001), _c(0.3, 0.001), _corrected(0.3, None), "inconclusive"),  # too few pixels for an interval
 ])
 def test_verdicts_follow_the_rule(before, after, corrected, expected):
-    verdict, reason = decide(before, after, corrected, min_r=0.1, alpha=0.05, margin=0.014)
+    p = after.p_value
+    bounds = None if p is None else (p, p) if p != 0.045 else (0.03, 0.07)
+    verdict, reason = decide(before, after, corrected, min_r=0.1, alpha=0.05, p_bounds=bounds)
     assert verdict == expected and reason
     assert expected in VERDICTS
 
@@ -417,3 +419,40 @@ def test_illumination_estimated_per_channel_creates_no_ratio_correlation():
     assert abs(result.before.pearson) < 0.05
     with pytest.raises(ValueError, match="at least 3"):
         illumination_estimate(fields[:2])
+
+
+def test_many_objects_each_in_its_own_box(tmp_path):
+    # 144 small objects (4 x 4 pixels each, on a 12 x 12 grid): each is measured inside its box widened
+    # by a margin, never as a full-size mask; every object gets its row.
+    scene = pair_scene(23, r=0.3, peak_a=1000, leak=0.3, shape=(192, 192))
+    matrix_path, image_path = _two_channel_files(tmp_path, measured_matrix(scene, 23), scene.raw.astype(np.uint16))
+    objects = np.zeros((192, 192), np.uint32)
+    for i in range(12):
+        for j in range(12):
+            objects[8 + 15 * i: 12 + 15 * i, 8 + 15 * j: 12 + 15 * j] = 1 + 12 * i + j
+    tifffile.imwrite(tmp_path / "objects.tif", objects)
+    assert main(["coloc", str(image_path), "--matrix", str(matrix_path), "--labels", "A,B", "--objects",
+                 str(tmp_path / "objects.tif"), "--rounds", "19", "--csv", str(tmp_path / "o.csv"), "--quiet"]) == 0
+    rows = (tmp_path / "o.csv").read_text().splitlines()[1:]
+    assert sorted(int(row.split(",")[3]) for row in rows) == list(range(1, 145))
+    assert all(",16," in row for row in rows)  # before_n_pixels of each 4 x 4 object
+
+
+def test_figure_names_are_unique_per_input(tmp_path, capsys):
+    # sample.v1 and sample.v2, or two files of one name in different folders, must not share a figure.
+    scene = pair_scene(24, r=0.0, peak_a=800, leak=0.3, shape=(64, 64))
+    matrix_path, image_path = _two_channel_files(tmp_path, measured_matrix(scene, 24), scene.raw.astype(np.uint16))
+    (tmp_path / "other").mkdir()
+    copies = [tmp_path / "sample.v1.ome.tif", tmp_path / "sample.v2.ome.tif", tmp_path / "other" / "img.ome.tif"]
+    for copy in copies:
+        copy.write_bytes(image_path.read_bytes())
+    folder = tmp_path / "figures"
+    assert main(["coloc", str(image_path), *map(str, copies), "--matrix", str(matrix_path), "--labels", "A,B",
+                 "--rounds", "19", "--histograms", str(folder), "--quiet"]) == 0
+    names = sorted(p.name for p in folder.iterdir())
+    assert len(names) == 4 and names[2:] == ["sample.v1_A-B.png", "sample.v2_A-B.png"]
+    assert sum(name.startswith("img_") for name in names) == 2  # the two img.ome.tif, told apart
+    (tmp_path / "afile").write_text("x")
+    assert main(["coloc", str(image_path), "--matrix", str(matrix_path), "--labels", "A,B", "--rounds", "19",
+                 "--histograms", str(tmp_path / "afile")]) == 2
+    assert "is a file" in capsys.readouterr().err

@@ -7,6 +7,8 @@ from napari.layers import Image as ImageLayer
 from napari.layers import Labels as LabelsLayer
 from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout, QWidget
 
+from unmix.coloc.verdict import ROUNDS
+
 from .layers import NONE, VERDICT_LOOK, LayerChoice, Worker, fill_table, guarded, layer_image, session
 
 
@@ -27,7 +29,7 @@ class OverlapWidget(QWidget):
         self.mask = LayerChoice(napari_viewer, types=(LabelsLayer, ImageLayer), optional=True)
         self.rounds = QSpinBox()
         self.rounds.setRange(19, 9999)
-        self.rounds.setValue(200)
+        self.rounds.setValue(ROUNDS)
         form.addRow("Label A", self.label_a)
         form.addRow("Label B", self.label_b)
         form.addRow("Raw image layer", self.raw)
@@ -83,7 +85,7 @@ class OverlapWidget(QWidget):
 
     @guarded
     def compute(self):
-        from unmix.coloc.verdict import judge_pair, pair_planes, prepare_image
+        from unmix.coloc.verdict import judge_pair, pair_pixels, prepare_image
 
         shared = session(self.viewer)
         matrix = shared.matrix
@@ -120,8 +122,7 @@ class OverlapWidget(QWidget):
         def work():
             prepared = prepare_image(raw, matrix, unmixed=unmixed)
             result = judge_pair(prepared, pair, mask=mask, rounds=rounds)
-            keep = prepared.valid if mask is None else prepared.valid & mask
-            return result, [p[keep] for p in pair_planes(prepared, pair)]
+            return result, pair_pixels(prepared, pair, mask)
 
         self.runner.start(work, self._show, "Measuring overlap")
 

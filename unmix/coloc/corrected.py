@@ -154,29 +154,132 @@ def _gradient(c: np.ndarray, r: float) -> np.ndarray:
     return np.array([-r / (2 * c[0]), -r / (2 * c[1]), 1 / np.sqrt(c[0] * c[1])])
 
 
-def _moment_covariance(u: np.ndarray, gamma: np.ndarray) -> np.ndarray:
-    """Sampling covariance (3, 3) of the moments (S_aa, S_bb, S_ab) given the signals, from each
-    pixel's centred abundances `u` (2, N) and noise covariance `gamma` (3, N) = (aa, bb, ab).
+class ChannelSums:
+    """Count, channel means, centred channel cross products and summed noise variances over a region,
+    added chunk by chunk (merged with Chan's parallel update) and mergeable."""
+
+    def __init__(self, n_channels: int):
+        self.n = 0
+        self.mean = np.zeros(n_channels)
+        self.m2 = np.zeros((n_channels, n_channels))
+        self.variance_sum = np.zeros(n_channels)
+
+    def add(self, signal: np.ndarray, variance: np.ndarray) -> None:
+        n = signal.shape[1]
+        if n == 0:
+            return
+        mean = signal.mean(axis=1)
+        centred = signal - mean[:, None]
+        total = self.n + n
+        delta = mean - self.mean
+        self.m2 += centred @ centred.T + np.outer(delta, delta) * self.n * n / total
+        self.mean += delta * n / total
+        self.n = total
+        self.variance_sum += variance.sum(axis=1)
+
+    def merge(self, other: "ChannelSums") -> None:
+        if other.n == 0:
+            return
+        total = self.n + other.n
+        delta = other.mean - self.mean
+        self.m2 += other.m2 + np.outer(delta, delta) * self.n * other.n / total
+        self.mean += delta * other.n / total
+        self.n = total
+        self.variance_sum += other.variance_sum
+
+    @property
+    def covariance(self) -> np.ndarray:
+        return self.m2 / max(self.n, 1)
+
+    @property
+    def mean_variance(self) -> np.ndarray:
+        return self.variance_sum / max(self.n, 1)
+
+
+class NoiseSums:
+    """Per-voxel sums for the sampling covariance of the three second moments of two unmixed labels
+    (fixed unmixing `rows`), added chunk by chunk and mergeable.
 
     For Gaussian noise e with covariance G and fixed signal s, the centred cross product
     u_x u_y = (s_x + e_x)(s_y + e_y) has covariance with u_z u_w of
     s_x s_z G_yw + s_x s_w G_yz + s_y s_z G_xw + s_y s_w G_xz + G_xz G_yw + G_xw G_yz.
     With s_x s_z replaced by its unbiased estimate u_x u_z - G_xz this becomes
-    u_x u_z G_yw + u_x u_w G_yz + u_y u_z G_xw + u_y u_w G_xz - G_xz G_yw - G_xw G_yz.
+    u_x u_z G_yw + u_x u_w G_yz + u_y u_z G_xw + u_y u_w G_xz - G_xz G_yw - G_xw G_yz,
+    summed over the voxels. Its parts are kept as raw sums about a fixed reference point (the first
+    chunk's mean), so that the region's own mean can be taken out at the end.
     """
-    pairs = ((0, 0), (1, 1), (0, 1))
 
-    def g(x, y):
-        return gamma[2] if x != y else gamma[x]
+    _PAIRS = ((0, 0), (1, 1), (0, 1))  # index 0: aa, 1: bb, 2: ab
 
-    n = u.shape[1]
-    out = np.empty((3, 3))
-    for i, (x, y) in enumerate(pairs):
-        for j, (z, w) in enumerate(pairs[i:], start=i):
-            term = (u[x] * u[z] * g(y, w) + u[x] * u[w] * g(y, z) + u[y] * u[z] * g(x, w)
-                    + u[y] * u[w] * g(x, z) - g(x, z) * g(y, w) - g(x, w) * g(y, z))
-            out[i, j] = out[j, i] = term.sum() / n**2
-    return out
+    def __init__(self, rows: np.ndarray):
+        self.rows = np.asarray(rows, dtype=np.float64)
+        self.reference = None
+        self.n = 0
+        self.u = np.zeros(2)                # sum u
+        self.g = np.zeros(3)                # sum g_r
+        self.ug = np.zeros((2, 3))          # sum u_p g_r
+        self.uug = np.zeros((3, 3))         # sum u_p u_q g_r, pair pq in _PAIRS
+        self.gg = np.zeros((3, 3))          # sum g_r g_s
+
+    def add(self, signal: np.ndarray, variance: np.ndarray) -> None:
+        if signal.shape[1] == 0:
+            return
+        u = self.rows @ signal
+        if self.reference is None:
+            self.reference = u.mean(axis=1)
+        u = u - self.reference[:, None]
+        g = np.stack([self.rows[0] ** 2 @ variance, self.rows[1] ** 2 @ variance,
+                      (self.rows[0] * self.rows[1]) @ variance])
+        self.n += u.shape[1]
+        self.u += u.sum(axis=1)
+        self.g += g.sum(axis=1)
+        self.ug += u @ g.T
+        for i, (p, q) in enumerate(self._PAIRS):
+            self.uug[i] += (u[p] * u[q]) @ g.T
+        self.gg += g @ g.T
+
+    def merge(self, other: "NoiseSums") -> None:
+        if other.n == 0:
+            return
+        if self.reference is None:
+            self.reference = other.reference
+        shift = other.reference - self.reference  # other's u = self's u - shift
+        u = other.u + shift * other.n
+        ug = other.ug + np.outer(shift, other.g)
+        uug = other.uug.copy()
+        for i, (p, q) in enumerate(self._PAIRS):
+            uug[i] += shift[p] * other.ug[q] + shift[q] * other.ug[p] + shift[p] * shift[q] * other.g
+        self.n += other.n
+        self.u += u
+        self.g += other.g
+        self.ug += ug
+        self.uug += uug
+        self.gg += other.gg
+
+    def moment_covariance(self) -> np.ndarray:
+        """Sampling covariance (3, 3) of (S_aa, S_bb, S_ab), the moments taken about the region's mean."""
+        n = self.n
+        mean = self.u / n  # relative to the reference
+
+        def centred(p, q, r):  # sum (u_p - mean_p)(u_q - mean_q) g_r
+            i = self._PAIRS.index((min(p, q), max(p, q)))
+            return (self.uug[i, r] - mean[q] * self.ug[p, r] - mean[p] * self.ug[q, r]
+                    + mean[p] * mean[q] * self.g[r])
+
+        def index(x, y):
+            return 2 if x != y else x
+
+        out = np.empty((3, 3))
+        for i, (x, y) in enumerate(self._PAIRS):
+            for j, (z, w) in enumerate(self._PAIRS[i:], start=i):
+                total = (centred(x, z, index(y, w)) + centred(x, w, index(y, z)) + centred(y, z, index(x, w))
+                         + centred(y, w, index(x, z)) - self.gg[index(x, z), index(y, w)]
+                         - self.gg[index(x, w), index(y, z)])
+                out[i, j] = out[j, i] = total / n**2
+        return out
+
+    def mean_g(self) -> np.ndarray:
+        return self.g / self.n
 
 
 def corrected_correlation(signal: np.ndarray, variance: np.ndarray, rows: np.ndarray, *,
@@ -200,21 +303,28 @@ def corrected_correlation(signal: np.ndarray, variance: np.ndarray, rows: np.nda
     """
     signal = np.asarray(signal, dtype=np.float64)
     variance = np.asarray(variance, dtype=np.float64)
-    rows = np.asarray(rows, dtype=np.float64)
-    n_pixels = signal.shape[1]
+    channels = ChannelSums(signal.shape[0])
+    channels.add(signal, variance)
+    noise = NoiseSums(rows)
+    noise.add(signal, variance)
+    return corrected_from_sums(channels, noise, row_draws=row_draws, noise_model_sd=noise_model_sd)
+
+
+def corrected_from_sums(channels: ChannelSums, noise: NoiseSums, *, row_draws: np.ndarray | None = None,
+                        noise_model_sd: float = 0.0) -> CorrectedCorrelation:
+    """:func:`corrected_correlation` from sums accumulated over a region of any size."""
+    rows = noise.rows
+    n_pixels = channels.n
     if n_pixels < 3:
         return CorrectedCorrelation(None, None, None, None, 0.0, 0.0, 0.0, 0.0, (np.nan, np.nan), n_pixels,
                                     f"only {n_pixels} pixels")
-    centred = signal - signal.mean(axis=1, keepdims=True)
-    channel_cov = centred @ centred.T / n_pixels
-    mean_variance = variance.mean(axis=1)
+    channel_cov = channels.covariance
+    mean_variance = channels.mean_variance
     s, n = _moments(rows, channel_cov, mean_variance)
     plain = s[2] / np.sqrt(s[0] * s[1]) if s[0] > 0 and s[1] > 0 else None
     adjusted = (s[2] - n[2]) / np.sqrt(s[0] * s[1]) if plain is not None else None
     share = tuple(float(n[i] / s[i]) if s[i] > 0 else float("nan") for i in (0, 1))
-    u = rows @ centred
-    gamma = np.stack([rows[0] ** 2 @ variance, rows[1] ** 2 @ variance, (rows[0] * rows[1]) @ variance])
-    moment_cov = _moment_covariance(u, gamma)
+    moment_cov = noise.moment_covariance()
     # A label's variance above its noise must stand out from the error of that difference (1.96 of its
     # standard errors: detector noise and noise model), else its r would be noise divided by noise.
     floor = tuple(_Z95 * np.sqrt(max(moment_cov[i, i], 0.0) + (noise_model_sd * n[i]) ** 2) for i in (0, 1))
@@ -230,9 +340,9 @@ def corrected_correlation(signal: np.ndarray, variance: np.ndarray, rows: np.nda
     adjusted_spread = 0.0
     if adjusted is not None:
         scale = np.sqrt(s[0] * s[1])
+        g = noise.mean_g()
         # Pixel-aligned noise of the cross moment against the same noise with the pairing broken.
-        shifted = (np.sum(u[0] ** 2 - gamma[0]) * gamma[1].mean() + np.sum(u[1] ** 2 - gamma[1]) * gamma[0].mean()
-                   + n_pixels * gamma[0].mean() * gamma[1].mean()) / n_pixels**2
+        shifted = ((s[0] - g[0]) * g[1] + (s[1] - g[1]) * g[0] + g[0] * g[1]) / n_pixels
         excess = max(moment_cov[2, 2] - shifted, 0.0) / scale**2
         matrix_part = np.var(drawn_adjusted, ddof=1) if len(drawn_adjusted) >= 2 else 0.0
         adjusted_spread = float(np.sqrt(excess + matrix_part + (n[2] * noise_model_sd / scale) ** 2))
@@ -256,5 +366,5 @@ def corrected_correlation(signal: np.ndarray, variance: np.ndarray, rows: np.nda
         interval = (float(np.tanh(z - _Z95 * sd_z)), float(np.tanh(z + _Z95 * sd_z)))
     else:
         note = f"only {n_pixels} pixels: too few for an interval (need {MIN_PIXELS_FOR_INTERVAL})"
-    return CorrectedCorrelation(float(r), plain, adjusted, interval, adjusted_spread, float(np.sqrt(var_noise)), sd_matrix,
-                                float(sd_model), share, n_pixels, note)
+    return CorrectedCorrelation(float(r), plain, adjusted, interval, adjusted_spread, float(np.sqrt(var_noise)),
+                                sd_matrix, float(sd_model), share, n_pixels, note)

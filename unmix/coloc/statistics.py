@@ -149,15 +149,18 @@ def li_icq(a, b, mask=None) -> float | None:
     return float(np.mean((a - a.mean()) * (b - b.mean()) > 0) - 0.5)
 
 
+def orthogonal_line(var_a: float, var_b: float, cov: float, mean_a: float, mean_b: float) -> tuple[float, float]:
+    """Slope and intercept of the orthogonal (total least squares) line B = slope A + intercept, from
+    the variances, the covariance and the means."""
+    if cov == 0:
+        return 0.0, float(mean_b)
+    slope = (var_b - var_a + np.sqrt((var_b - var_a) ** 2 + 4 * cov**2)) / (2 * cov)
+    return float(slope), float(mean_b - slope * mean_a)
+
+
 def orthogonal_regression(a, b) -> tuple[float, float]:
     """Slope and intercept of the orthogonal (total least squares) line B = slope A + intercept."""
-    mean_a, mean_b = a.mean(), b.mean()
-    s_aa, s_bb = np.var(a), np.var(b)
-    s_ab = np.mean((a - mean_a) * (b - mean_b))
-    if s_ab == 0:
-        return 0.0, float(mean_b)
-    slope = (s_bb - s_aa + np.sqrt((s_bb - s_aa) ** 2 + 4 * s_ab**2)) / (2 * s_ab)
-    return float(slope), float(mean_b - slope * mean_a)
+    return orthogonal_line(np.var(a), np.var(b), np.mean((a - a.mean()) * (b - b.mean())), a.mean(), b.mean())
 
 
 def costes_candidates(a: np.ndarray) -> np.ndarray:
@@ -168,12 +171,33 @@ def costes_candidates(a: np.ndarray) -> np.ndarray:
     return np.linspace(low, high, FLOAT_LEVELS)
 
 
+def costes_from_bins(bins: np.ndarray, candidates: np.ndarray, slope: float,
+                     intercept: float) -> tuple[float, float] | None:
+    """Costes' thresholds from the binned sums of :func:`unmix.coloc.costes_pass.below_threshold_sums`
+    (one row per candidate), or None when the regression slope is <= 0.
+
+    T runs down the candidates; the answer is the first T at which the pixels
+    with A < T and B < slope T + intercept have Pearson r <= 0 (or fewer than
+    two such pixels).
+    """
+    if slope <= 0:
+        return None
+    n, sa, sb, saa, sbb, sab = (np.cumsum(bins[:, i]) for i in range(6))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        covariance = sab - sa * sb / n
+        r = covariance / np.sqrt((saa - sa**2 / n) * (sbb - sb**2 / n))
+    for j in range(candidates.size - 1, -1, -1):
+        if n[j] < 2 or not r[j] > 0:  # r <= 0, or undefined: the procedure stops here
+            return float(candidates[j]), float(slope * candidates[j] + intercept)
+    return float(candidates[0]), float(slope * candidates[0] + intercept)
+
+
 def costes_thresholds(a, b, mask=None) -> tuple[float, float] | None:
     """Costes' automatic thresholds (t_A, t_B), or None when the regression slope is <= 0.
 
-    T runs down the candidates of :func:`costes_candidates`; the answer is the
-    first T at which the pixels with A < T and B < slope T + intercept have
-    Pearson r <= 0 (or fewer than two such pixels).
+    Every candidate T of :func:`costes_candidates` is answered from
+    cumulative sums over a histogram of each pixel's entry threshold (one
+    pass; see :func:`costes_from_bins`).
     """
     from .costes_pass import below_threshold_sums
 
@@ -187,17 +211,19 @@ def costes_thresholds(a, b, mask=None) -> tuple[float, float] | None:
     # Each pixel is below both thresholds for every T above its entry level.
     entry = np.maximum(a, (b - intercept) / slope)
     # Centre the values so that the cumulative sums do not lose the variance to cancellation.
-    sums = below_threshold_sums(entry, a - a.mean(), b - b.mean(), float(candidates[0]),
+    bins = below_threshold_sums(entry, a - a.mean(), b - b.mean(), float(candidates[0]),
                                 float(candidates[1] - candidates[0]) if candidates.size > 1 else 1.0,
                                 candidates.size)
-    n, sa, sb, saa, sbb, sab = (np.cumsum(sums[:, i]) for i in range(6))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        covariance = sab - sa * sb / n
-        r = covariance / np.sqrt((saa - sa**2 / n) * (sbb - sb**2 / n))
-    for j in range(candidates.size - 1, -1, -1):
-        if n[j] < 2 or not r[j] > 0:  # r <= 0, or undefined: the procedure stops here
-            return float(candidates[j]), float(slope * candidates[j] + intercept)
-    return float(candidates[0]), float(slope * candidates[0] + intercept)
+    return costes_from_bins(bins, candidates, slope, intercept)
+
+
+def otsu_from_histogram(counts: np.ndarray, low: float, high: float) -> float:
+    """Otsu's threshold from a histogram of `counts` over equal bins spanning [low, high]."""
+    from skimage.filters import threshold_otsu
+
+    high = high if high > low else low + 1.0
+    edges = np.linspace(low, high, counts.size + 1)
+    return float(threshold_otsu(hist=(np.asarray(counts), (edges[:-1] + edges[1:]) / 2)))
 
 
 def otsu_thresholds(a, b, mask=None) -> tuple[float, float]:
@@ -252,28 +278,57 @@ def shifted_correlations(a, b, mask=None) -> np.ndarray:
 
 @dataclass(frozen=True)
 class Randomisation:
-    """A randomisation test's outcome: p, the shortest shift allowed, how many shifts were used and
-    whether they were all the allowed ones (then p has no Monte-Carlo error)."""
+    """A randomisation test's outcome: p, the shortest shift allowed, how many shifts were used,
+    whether they were all the allowed ones (then p has no Monte-Carlo error), and how many reached
+    the observed statistic."""
 
     p_value: float | None
     min_shift: int
     shifts: int
     exhaustive: bool
+    reached: float = 0.0
 
-    def margin(self, alpha: float) -> float:
-        """Twice the Monte-Carlo standard error of p near `alpha` (0 when every shift was used)."""
-        return 0.0 if self.exhaustive or not self.shifts else 2 * float(np.sqrt(alpha * (1 - alpha) / self.shifts))
+    def bounds(self) -> tuple[float, float] | None:
+        """95 % Monte-Carlo interval of p: Clopper-Pearson on the shifts that reached the observed
+        statistic out of those drawn (the p-value over every allowed shift lies there); p itself when
+        every allowed shift was used."""
+        if self.p_value is None:
+            return None
+        if self.exhaustive or not self.shifts:
+            return self.p_value, self.p_value
+        from scipy.stats import beta
+
+        n, b = self.shifts, self.reached
+        low = float(beta.ppf(0.025, b, n - b + 1)) if b > 0 else 0.0
+        high = float(beta.ppf(0.975, b + 1, n - b)) if b < n else 1.0
+        return low, high
 
 
 def randomisation_test(a, b, mask=None, *, rounds: int = 1000, seed: int = 0, min_shift: int | None = None,
                        observed: float | None = None, spread: float = 0.0) -> Randomisation:
-    """One-sided test for positive association of A and B by toroidal shifts of B.
+    """One-sided test for positive association of A and B by toroidal shifts of B (see :func:`shift_test`).
+
+    `observed` is the statistic to compare with the shifted Pearson r's
+    (default: the plain r of A and B); shifts at least `min_shift` long
+    (default: the larger correlation length of A and B).
+    """
+    a = np.asarray(a, dtype=np.float64)
+    b = np.asarray(b, dtype=np.float64)
+    if observed is None:
+        observed = pearson(a, b, mask)
+    length = min_shift or max(correlation_length(a, mask), correlation_length(b, mask))
+    if observed is None:
+        return Randomisation(None, length, 0, False)
+    return shift_test(shifted_correlations(a, b, mask), observed, length, rounds=rounds, seed=seed, spread=spread)
+
+
+def shift_test(shifted: np.ndarray, observed: float, length: int, *, rounds: int, seed: int,
+               spread: float = 0.0) -> Randomisation:
+    """p-value of `observed` against the r's of toroidal shifts, ``shifted[dy, dx]``.
 
     Shifts are drawn uniformly among the (dy, dx) whose larger component is at
-    least `min_shift` (default: the larger correlation length of A and B);
-    when there are no more allowed shifts than `rounds`, every one is used.
-    `observed` is the statistic to compare with the shifted Pearson r's
-    (default: the plain r of A and B).
+    least `length`; when there are no more allowed shifts than `rounds`, every
+    one is used. p = (1 + b) / (N + 1) (Phipson & Smyth 2010).
 
     `spread` is the standard deviation of an error that the observed
     statistic carries and shifted copies do not (for unmixed labels: the
@@ -284,20 +339,13 @@ def randomisation_test(a, b, mask=None, *, rounds: int = 1000, seed: int = 0, mi
     p = (1 + sum Phi((r_s - observed) / spread)) / (N + 1), which is the
     plain count when `spread` is 0.
     """
-    a = np.asarray(a, dtype=np.float64)
-    b = np.asarray(b, dtype=np.float64)
-    if observed is None:
-        observed = pearson(a, b, mask)
-    length = min_shift or max(correlation_length(a, mask), correlation_length(b, mask))
-    if observed is None:
-        return Randomisation(None, length, 0, False)
-    height, width = a.shape
+    height, width = shifted.shape
     dy = np.minimum(np.arange(height), height - np.arange(height))[:, None]
     dx = np.minimum(np.arange(width), width - np.arange(width))[None, :]
     allowed = np.flatnonzero((np.maximum(dy, dx) >= length).ravel())
     if allowed.size == 0:
         return Randomisation(None, length, 0, False)
-    r = shifted_correlations(a, b, mask).ravel()
+    r = shifted.ravel()
     exhaustive = allowed.size <= rounds
     chosen = allowed if exhaustive else np.random.default_rng(seed).choice(allowed, size=rounds, replace=False)
     if spread > 0:
@@ -306,7 +354,7 @@ def randomisation_test(a, b, mask=None, *, rounds: int = 1000, seed: int = 0, mi
         reached = float(ndtr((r[chosen] - observed) / spread).sum())
     else:
         reached = int(np.count_nonzero(r[chosen] >= observed - 1e-12))
-    return Randomisation((1 + reached) / (chosen.size + 1), length, int(chosen.size), exhaustive)
+    return Randomisation((1 + reached) / (chosen.size + 1), length, int(chosen.size), exhaustive, float(reached))
 
 
 def randomisation_p_value(a, b, mask=None, *, rounds: int = 200, seed: int = 0, min_shift: int | None = None,
@@ -320,41 +368,31 @@ def randomisation_p_value(a, b, mask=None, *, rounds: int = 200, seed: int = 0, 
 
 def coefficients(a, b, mask=None, *, thresholds=None, threshold_method: str = "costes", rounds: int = 200,
                  seed: int = 0, min_shift: int | None = None) -> Coefficients:
-    """All coefficients of the pair (A, B) over `mask`.
+    """All coefficients of the pair (A, B) over `mask`, for images of any number of dimensions (the
+    last two are Y and X; shifts move every plane alike).
 
     `thresholds` (t_A, t_B) are used when given; else Costes' procedure
     (``threshold_method="costes"``), falling back to Otsu when the regression
     slope is <= 0, or Otsu directly. `rounds` = 0 skips the randomisation.
+    The sums are those of :mod:`unmix.coloc.sums`, one plane at a time.
     """
-    values_a, values_b = _pixels(a, b, mask)
-    n = int(values_a.size)
-    if n < MIN_PIXELS:
-        return Coefficients(None, None, None, None, None, "none", None, None, None, None, None, n,
-                            f"only {n} pixels; at least {MIN_PIXELS} are needed")
-    note = ""
-    if np.ptp(values_a) == 0 or np.ptp(values_b) == 0:
-        which = "A" if np.ptp(values_a) == 0 else "B"
-        note = f"image {which} is constant here: correlation coefficients are undefined"
-    method = "given"
-    if thresholds is None:
-        if threshold_method == "costes" and not note:
-            thresholds = costes_thresholds(values_a, values_b)
-            method = "costes"
-            if thresholds is None:
-                method = "otsu (Costes: regression slope <= 0, no threshold)"
-        if thresholds is None:
-            thresholds = otsu_thresholds(values_a, values_b) if not note else (float(values_a.max()),
-                                                                               float(values_b.max()))
-            method = method if method.startswith("otsu") else ("otsu" if not note else "none")
-    m1, m2 = manders(values_a, values_b, thresholds)
-    own_m1, own_m2 = manders_above_own_thresholds(values_a, values_b, thresholds)
-    r = pearson(values_a, values_b)
+    from .sums import accumulate
+
+    a = np.asarray(a, dtype=np.float64)
+    b = np.asarray(b, dtype=np.float64)
+    if a.shape != b.shape:
+        raise ValueError(f"images differ in shape: {a.shape} and {b.shape}")
+    keep = np.ones(a.shape, bool) if mask is None else np.asarray(mask, dtype=bool)
+    if keep.shape != a.shape:
+        raise ValueError(f"mask shape {keep.shape} differs from the image shape {a.shape}")
+    planes_a, planes_b, planes_m = (x.reshape((-1,) + a.shape[-2:]) for x in (a, b, keep))
+
+    def planes():
+        return zip(planes_a, planes_b, planes_m)
+
+    sums = accumulate(planes, thresholds=thresholds, threshold_method=threshold_method, shape=a.shape[-2:],
+                      total=a.size, seed=seed)
     p = None
-    if rounds and r is not None:
-        p, _ = randomisation_p_value(a, b, mask, rounds=rounds, seed=seed, min_shift=min_shift, observed=r)
-    return Coefficients(
-        pearson=r, spearman=spearman(values_a, values_b) if r is not None else None, manders_m1=m1, manders_m2=m2,
-        thresholds=tuple(float(t) for t in thresholds), threshold_method=method,
-        m1_above_own_threshold=own_m1, m2_above_own_threshold=own_m2,
-        overlap=overlap(values_a, values_b), icq=li_icq(values_a, values_b) if r is not None else None,
-        p_value=p, n_pixels=n, note=note)
+    if rounds and sums.moments.pearson is not None and sums.moments.n >= MIN_PIXELS:
+        p = sums.randomisation(rounds=rounds, seed=seed, min_shift=min_shift, observed=sums.moments.pearson).p_value
+    return sums.coefficients(p)

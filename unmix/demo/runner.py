@@ -71,7 +71,7 @@ def run_demo(outdir, out=None) -> dict:
 
 def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdir: Path, out) -> list[dict]:
     """Before/after colocalization of the demo's two pairs, with histograms; records as coloc writes them."""
-    from ..coloc.verdict import judge_pair, pair_planes, prepare_image
+    from ..coloc.verdict import judge_pair, pair_pixels, prepare_image
     from ..io.atomic import safe_file_name, write_text_atomic
     from ..io.images import read_image
     from ..report.plots import coloc_histograms, save_png
@@ -84,7 +84,7 @@ def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdi
     for role in ("independent_but_bleeding", "truly_overlapping"):
         pair = tuple(pairs[role])
         result = judge_pair(image, pair)
-        before_a, before_b, after_a, after_b = pair_planes(image, pair)
+        before_a, before_b, after_a, after_b = pair_pixels(image, pair)
         histogram = save_png(coloc_histograms((before_a, before_b), (after_a, after_b), result),
                              outdir / safe_file_name(f"coloc_{pair[0]}-{pair[1]}.png"))
         record = {**result.to_dict(), "image": str(sample), "object": None, "matrix_sha256": matrix.sha256(),

@@ -20,6 +20,11 @@ VERDICT_STYLE = {
 }
 
 
+def _plain(text) -> str:
+    """Text that matplotlib shows as it is (a "$" would start mathematical notation)."""
+    return str(text).replace("$", r"\$")
+
+
 def _pyplot():
     import matplotlib
 
@@ -169,4 +174,60 @@ def coloc_histograms(before_pixels, after_pixels, result):
         axis.set_ylabel(b_label)
         axis.legend(fontsize=7, loc="upper left")
     figure.suptitle(f"{a_label} and {b_label}: {result.verdict}", fontsize=11)
+    return figure
+
+
+def depth_profile_figure(record: dict):
+    """Each plane's before-r and noise-corrected after-r (with its 95 % interval) of a z-stack result,
+    and the fitted depth trend."""
+    plt = _pyplot()
+    profile = record.get("plane_profile") or []
+    figure, axis = plt.subplots(figsize=(6.4, 3.4), layout="constrained")
+    first = (record.get("planes") or [0])[0]
+    planes = [first + p["plane"] for p in profile]
+    corrected = [np.nan if p["pearson_noise_corrected"] is None else p["pearson_noise_corrected"] for p in profile]
+    low = [np.nan if p["interval"] is None else p["interval"][0] for p in profile]
+    high = [np.nan if p["interval"] is None else p["interval"][1] for p in profile]
+    before = [np.nan if p["pearson_before"] is None else p["pearson_before"] for p in profile]
+    axis.fill_between(planes, low, high, color="#56B4E9", alpha=0.3, label="after, 95 % interval")
+    axis.plot(planes, corrected, "o-", color="#0072B2", label="after, noise-corrected r")
+    axis.plot(planes, before, "s--", color="#D55E00", label="before (raw channels) r")
+    trend = record.get("depth_trend") or {}
+    if trend.get("slope_per_plane") is not None and np.isfinite(corrected).any():
+        keep = np.isfinite(corrected)
+        x = np.asarray(planes, dtype=float)
+        centre = np.nanmean(np.asarray(corrected)[keep])
+        axis.plot(x, centre + trend["slope_per_plane"] * (x - x[keep].mean()), color="#444444", lw=1,
+                  label="depth trend" + (" (flagged)" if trend.get("flagged") else ""))
+    axis.axhline(record.get("min_r", 0.1), color="#999999", lw=0.8, ls=":", label="smallest r that counts")
+    axis.set_xlabel("plane")
+    axis.set_ylabel("Pearson r")
+    axis.set_title(_plain(f"{record['pair'][0]} and {record['pair'][1]} by depth: {record['verdict']}"), fontsize=10)
+    axis.legend(fontsize=7, loc="best")
+    return figure
+
+
+def time_figure(summary: dict):
+    """A time series: the corrected after-r per time point (with its interval) and each label's mean
+    signal relative to the first time point (bleaching or drift)."""
+    plt = _pyplot()
+    figure, (top, bottom) = plt.subplots(2, 1, figsize=(6.4, 5.0), sharex=True, layout="constrained")
+    frames = summary["frames"]
+    corrected = [np.nan if r is None else r for r in summary["pearson_noise_corrected"]]
+    low = [np.nan if i is None else i[0] for i in summary["intervals"]]
+    high = [np.nan if i is None else i[1] for i in summary["intervals"]]
+    top.fill_between(frames, low, high, color="#56B4E9", alpha=0.3, label="95 % interval")
+    top.plot(frames, corrected, "o-", color="#0072B2", label="after, noise-corrected r")
+    top.set_ylabel("Pearson r")
+    top.legend(fontsize=7, loc="best")
+    top.set_title(_plain(f"{summary['pair'][0]} and {summary['pair'][1]} over time"), fontsize=10)
+    for (label, bleaching), colour in zip(summary["bleaching"].items(), ("#D55E00", "#009E73")):
+        series = np.array([np.nan if v is None else v for v in bleaching["mean_signal"]], dtype=float)
+        relative = series / series[0] if series.size and series[0] > 0 else series
+        bottom.plot(frames, relative, "o-", color=colour,
+                    label=_plain(label) + (" (flagged)" if bleaching["flagged"] else ""))
+    bottom.axhline(1 - summary.get("bleach_limit", 0.2), color="#999999", lw=0.8, ls=":", label="bleaching limit")
+    bottom.set_xlabel("time point")
+    bottom.set_ylabel("signal / first")
+    bottom.legend(fontsize=7, loc="best")
     return figure
