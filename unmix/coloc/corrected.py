@@ -177,6 +177,23 @@ class ChannelSums:
         self.n = total
         self.variance_sum += variance.sum(axis=1)
 
+    def add_plane(self, signal: np.ndarray, variance: np.ndarray, mask: np.ndarray) -> None:
+        """Add the masked pixels of a plane (C, Y, X), in one compiled pass."""
+        from .plane_pass import channel_sums
+
+        if not mask.any():
+            return
+        reference = signal[:, mask].mean(axis=1) if self.n == 0 else self.mean
+        c = signal.shape[0]
+        sums = channel_sums(np.ascontiguousarray(signal, dtype=np.float64),
+                            np.ascontiguousarray(variance, dtype=np.float64), mask, np.asarray(reference, float))
+        n = sums[0]
+        shifted = sums[1:1 + c] / n
+        m2 = sums[1 + c:1 + c + c * c].reshape(c, c) - n * np.outer(shifted, shifted)
+        other = ChannelSums(c)
+        other.n, other.mean, other.m2, other.variance_sum = int(n), reference + shifted, m2, sums[1 + c + c * c:]
+        self.merge(other)
+
     def merge(self, other: "ChannelSums") -> None:
         if other.n == 0:
             return
@@ -222,21 +239,25 @@ class NoiseSums:
         self.gg = np.zeros((3, 3))          # sum g_r g_s
 
     def add(self, signal: np.ndarray, variance: np.ndarray) -> None:
-        if signal.shape[1] == 0:
+        """Add pixels given as (C, N) arrays."""
+        self.add_plane(signal[:, None, :], variance[:, None, :], np.ones((1, signal.shape[1]), bool))
+
+    def add_plane(self, signal: np.ndarray, variance: np.ndarray, mask: np.ndarray) -> None:
+        """Add the masked pixels of a plane (C, Y, X), in one compiled pass."""
+        from .plane_pass import noise_sums
+
+        if not mask.any():
             return
-        u = self.rows @ signal
         if self.reference is None:
-            self.reference = u.mean(axis=1)
-        u = u - self.reference[:, None]
-        g = np.stack([self.rows[0] ** 2 @ variance, self.rows[1] ** 2 @ variance,
-                      (self.rows[0] * self.rows[1]) @ variance])
-        self.n += u.shape[1]
-        self.u += u.sum(axis=1)
-        self.g += g.sum(axis=1)
-        self.ug += u @ g.T
-        for i, (p, q) in enumerate(self._PAIRS):
-            self.uug[i] += (u[p] * u[q]) @ g.T
-        self.gg += g @ g.T
+            self.reference = self.rows @ signal[:, mask].mean(axis=1)
+        sums = noise_sums(np.ascontiguousarray(signal, dtype=np.float64),
+                          np.ascontiguousarray(variance, dtype=np.float64), mask, self.rows, self.reference)
+        self.n += int(sums[0])
+        self.u += sums[1:3]
+        self.g += sums[3:6]
+        self.ug += sums[6:12].reshape(2, 3)
+        self.uug += sums[12:21].reshape(3, 3)
+        self.gg += sums[21:30].reshape(3, 3)
 
     def merge(self, other: "NoiseSums") -> None:
         if other.n == 0:

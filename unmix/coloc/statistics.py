@@ -173,8 +173,9 @@ def costes_candidates(a: np.ndarray) -> np.ndarray:
 
 def costes_from_bins(bins: np.ndarray, candidates: np.ndarray, slope: float,
                      intercept: float) -> tuple[float, float] | None:
-    """Costes' thresholds from the binned sums of :func:`unmix.coloc.costes_pass.below_threshold_sums`
-    (one row per candidate), or None when the regression slope is <= 0.
+    """Costes' thresholds from the binned sums of :func:`unmix.coloc.plane_pass.second_sums` (one row
+    per candidate: the pixels that enter "below both thresholds" there), or None when the regression
+    slope is <= 0.
 
     T runs down the candidates; the answer is the first T at which the pixels
     with A < T and B < slope T + intercept have Pearson r <= 0 (or fewer than
@@ -199,7 +200,7 @@ def costes_thresholds(a, b, mask=None) -> tuple[float, float] | None:
     cumulative sums over a histogram of each pixel's entry threshold (one
     pass; see :func:`costes_from_bins`).
     """
-    from .costes_pass import below_threshold_sums
+    from .plane_pass import second_sums
 
     a, b = _pixels(a, b, mask)
     if a.size < 2:
@@ -208,12 +209,11 @@ def costes_thresholds(a, b, mask=None) -> tuple[float, float] | None:
     if slope <= 0:
         return None
     candidates = costes_candidates(a)
-    # Each pixel is below both thresholds for every T above its entry level.
-    entry = np.maximum(a, (b - intercept) / slope)
-    # Centre the values so that the cumulative sums do not lose the variance to cancellation.
-    bins = below_threshold_sums(entry, a - a.mean(), b - b.mean(), float(candidates[0]),
-                                float(candidates[1] - candidates[0]) if candidates.size > 1 else 1.0,
-                                candidates.size)
+    # Each pixel is below both thresholds for every T above its entry level; the sums are taken about
+    # the means so that they do not lose the variance to cancellation.
+    bins = np.zeros((candidates.size, 6))
+    second_sums(a[None], b[None], np.ones((1, a.size), bool), a.mean(), b.mean(), slope, intercept,
+                float(candidates[0]), float(candidates[1] - candidates[0]) if candidates.size > 1 else 1.0, bins)
     return costes_from_bins(bins, candidates, slope, intercept)
 
 

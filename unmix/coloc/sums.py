@@ -57,10 +57,32 @@ class Moments:
         self.mean += delta * n / total
         self.n = total
 
+    def add_sums(self, sums: np.ndarray, reference: tuple) -> None:
+        """Merge the sums of :func:`unmix.coloc.plane_pass.first_sums` taken about `reference`."""
+        from . import plane_pass as k
+
+        n = sums[k.N]
+        if n == 0:
+            return
+        shifted = np.array([sums[k.SA], sums[k.SB]]) / n
+        m2 = np.array([[sums[k.SAA] - sums[k.SA] * shifted[0], sums[k.SAB] - sums[k.SA] * shifted[1]],
+                       [sums[k.SAB] - sums[k.SB] * shifted[0], sums[k.SBB] - sums[k.SB] * shifted[1]]])
+        mean = np.asarray(reference) + shifted
+        total = self.n + n
+        delta = mean - self.mean
+        self.m2 += m2 + np.outer(delta, delta) * self.n * n / total
+        self.mean += delta * n / total
+        self.n = int(total)
+
     @property
     def pearson(self) -> float | None:
         denominator = np.sqrt(self.m2[0, 0] * self.m2[1, 1])
         return float(self.m2[0, 1] / denominator) if denominator > 0 else None
+
+
+# The autocorrelations that set the shortest shift come from this many planes (the first ones): a few
+# planes measure a correlation length as well as all of them, at a fraction of the Fourier work.
+LENGTH_PLANES = 4
 
 
 class Spectra:
@@ -74,21 +96,34 @@ class Spectra:
         self.cross_mbb = np.zeros(spectrum, complex)  # sum conj(F(m)) F(b^2)
         self.power = {name: np.zeros(spectrum) for name in ("ma", "mb", "m")}
         self.mixed = {name: np.zeros(spectrum, complex) for name in ("ma", "mb")}  # sum F(m x) conj(F(m))
+        self.length_planes = 0
 
-    def add(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray) -> None:
+    @staticmethod
+    def mask_spectrum(mask: np.ndarray) -> np.ndarray:
+        """F(m) of a plane's mask, to share between the pairs of one region."""
         from scipy import fft
 
-        m = mask.astype(np.float64)
-        a = np.where(mask, a, 0.0)
+        return fft.rfft2(mask.astype(np.float64), workers=-1)
+
+    def add(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray, f_m: np.ndarray | None = None) -> None:
+        from scipy import fft
+
+        if f_m is None:
+            f_m = self.mask_spectrum(mask)
         b = np.where(np.isfinite(b), b, 0.0)
-        f_m, f_ma, f_mb, f_b, f_bb = fft.rfft2(np.stack([m, a, b * m, b, b * b]), workers=-1)
+        length = self.length_planes < LENGTH_PLANES
+        planes = [np.where(mask, a, 0.0), b, b * b] + ([b * mask] if length else [])
+        f_ma, f_b, f_bb, *f_mb = fft.rfft2(np.stack(planes), workers=-1)
+        conj_m = np.conj(f_m)
         self.cross_ab += np.conj(f_ma) * f_b
-        self.cross_mb += np.conj(f_m) * f_b
-        self.cross_mbb += np.conj(f_m) * f_bb
-        for name, f in (("ma", f_ma), ("mb", f_mb)):
-            self.power[name] += (f * np.conj(f)).real
-            self.mixed[name] += f * np.conj(f_m)
-        self.power["m"] += (f_m * np.conj(f_m)).real
+        self.cross_mb += conj_m * f_b
+        self.cross_mbb += conj_m * f_bb
+        if length:
+            self.length_planes += 1
+            for name, f in (("ma", f_ma), ("mb", f_mb[0])):
+                self.power[name] += (f * np.conj(f)).real
+                self.mixed[name] += f * conj_m
+            self.power["m"] += (f_m * conj_m).real
 
     def _inverse(self, spectrum):
         from scipy import fft
@@ -146,6 +181,7 @@ class PairSums:
 
     def __init__(self, shape=None, *, total: int = 0, seed: int = 0):
         self.moments = Moments()
+        self.reference = None
         self.spectra = Spectra(shape) if shape is not None else None
         self.clipped = np.zeros(5)  # sum a+ b+, a+^2, b+^2, a+, b+
         self.low, self.high = np.inf, -np.inf
@@ -164,26 +200,33 @@ class PairSums:
         self.manders = np.zeros(6)
 
     # --- pass 1 -------------------------------------------------------------------------------
-    def add_first(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray) -> None:
-        keep = mask & np.isfinite(a) & np.isfinite(b)
-        if self.spectra is not None:
-            self.spectra.add(a, b, keep)
-        va, vb = a[keep].astype(np.float64, copy=False), b[keep].astype(np.float64, copy=False)
-        if va.size == 0:
-            return
-        self.moments.add(va, vb)
-        pa, pb = np.maximum(va, 0), np.maximum(vb, 0)
-        self.clipped += [pa @ pb, pa @ pa, pb @ pb, pa.sum(), pb.sum()]
-        self.low, self.high = min(self.low, float(va.min())), max(self.high, float(va.max()))
-        self.low_b, self.high_b = min(self.low_b, float(vb.min())), max(self.high_b, float(vb.max()))
-        self.integer = self.integer and bool(np.all(va == np.round(va)))
-        if self.rate >= 1:
-            self.sample.append(np.stack([va, vb]))
-        elif self.rate > 0:
-            chosen = self.rng.random(va.size) < self.rate
-            self.sample.append(np.stack([va[chosen], vb[chosen]]))
+    def add_first(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray, f_m: np.ndarray | None = None) -> None:
+        from . import plane_pass as k
 
-    def finish_first(self) -> None:
+        a = np.ascontiguousarray(a, dtype=np.float64)
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        if self.spectra is not None:
+            self.spectra.add(a, b, mask, f_m)
+        if self.reference is None:  # sums are taken about a point near the data, for their precision
+            inside = mask & np.isfinite(a) & np.isfinite(b)
+            self.reference = (float(a[inside].mean()), float(b[inside].mean())) if inside.any() else None
+            if self.reference is None:
+                return
+        sums = k.first_sums(a, b, mask, *self.reference)
+        if sums[k.N] == 0:
+            return
+        self.moments.add_sums(sums, self.reference)
+        self.clipped += sums[[k.PAB, k.PAA, k.PBB, k.PA, k.PB]]
+        self.low, self.high = min(self.low, sums[k.AMIN]), max(self.high, sums[k.AMAX])
+        self.low_b, self.high_b = min(self.low_b, sums[k.BMIN]), max(self.high_b, sums[k.BMAX])
+        self.integer = self.integer and bool(sums[k.INTEGER])
+        if self.rate > 0:
+            keep = mask & np.isfinite(a) & np.isfinite(b)
+            if self.rate < 1:
+                keep &= self.rng.random(keep.shape) < self.rate
+            self.sample.append(np.stack([a[keep], b[keep]]))
+
+    def finish_first(self, thresholds=None, method: str = "costes") -> None:
         if self.moments.n < 2:
             return
         cov = self.moments.m2 / self.moments.n
@@ -193,27 +236,27 @@ class PairSums:
         else:
             self.candidates = np.linspace(self.low, self.high, statistics.FLOAT_LEVELS)
         self.bins = np.zeros((self.candidates.size, 6))
-        self.histograms = (np.zeros(statistics.FLOAT_LEVELS), np.zeros(statistics.FLOAT_LEVELS))
+        # Otsu's histograms only where Otsu can be used: asked for, or Costes impossible.
+        if thresholds is None and (method != "costes" or self.regression[0] <= 0):
+            self.histograms = (np.zeros(statistics.FLOAT_LEVELS), np.zeros(statistics.FLOAT_LEVELS))
 
     # --- pass 2 -------------------------------------------------------------------------------
     def add_second(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray) -> None:
-        from .costes_pass import below_threshold_sums
+        from . import plane_pass as k
 
-        keep = mask & np.isfinite(a) & np.isfinite(b)
-        va, vb = a[keep].astype(np.float64, copy=False), b[keep].astype(np.float64, copy=False)
-        if va.size == 0 or self.bins is None:
+        if self.bins is None:
             return
-        mean_a, mean_b = self.moments.mean
-        self.same_sign += int(np.count_nonzero((va - mean_a) * (vb - mean_b) > 0))
-        for histogram, values, low, high in ((self.histograms[0], va, self.low, self.high),
-                                             (self.histograms[1], vb, self.low_b, self.high_b)):
-            histogram += np.histogram(values, statistics.FLOAT_LEVELS, (low, high if high > low else low + 1))[0]
+        a = np.ascontiguousarray(a, dtype=np.float64)
+        b = np.ascontiguousarray(b, dtype=np.float64)
         slope, intercept = self.regression
-        if slope > 0:
-            entry = np.maximum(va, (vb - intercept) / slope)
-            step = float(self.candidates[1] - self.candidates[0]) if self.candidates.size > 1 else 1.0
-            self.bins += below_threshold_sums(entry, va - mean_a, vb - mean_b, float(self.candidates[0]), step,
-                                              self.candidates.size)
+        step = float(self.candidates[1] - self.candidates[0]) if self.candidates.size > 1 else 1.0
+        self.same_sign += k.second_sums(a, b, mask, *self.moments.mean, slope, intercept,
+                                        float(self.candidates[0]), step, self.bins)
+        if self.histograms is not None:
+            keep = mask & np.isfinite(a) & np.isfinite(b)
+            for histogram, values, low, high in ((self.histograms[0], a[keep], self.low, self.high),
+                                                 (self.histograms[1], b[keep], self.low_b, self.high_b)):
+                histogram += np.histogram(values, statistics.FLOAT_LEVELS, (low, high if high > low else low + 1))[0]
 
     def finish_second(self, thresholds=None, method: str = "costes") -> None:
         """Choose the thresholds: `thresholds` when given, else Costes' (Otsu when the regression slope
@@ -239,16 +282,13 @@ class PairSums:
 
     # --- pass 3 -------------------------------------------------------------------------------
     def add_third(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray) -> None:
-        keep = mask & np.isfinite(a) & np.isfinite(b)
-        va, vb = a[keep].astype(np.float64, copy=False), b[keep].astype(np.float64, copy=False)
-        if va.size == 0 or self.thresholds is None:
+        from . import plane_pass as k
+
+        if self.thresholds is None:
             return
-        t_a, t_b = self.thresholds
-        pa, pb = np.maximum(va, 0), np.maximum(vb, 0)
-        above_a, above_b = va > t_a, vb > t_b
-        both = above_a & above_b
-        self.manders += [pa[above_b].sum(), pb[above_a].sum(), pa[both].sum(), pa[above_a].sum(),
-                         pb[both].sum(), pb[above_b].sum()]
+        a = np.ascontiguousarray(a, dtype=np.float64)
+        b = np.ascontiguousarray(b, dtype=np.float64)
+        self.manders += k.third_sums(a, b, mask, *self.thresholds)
 
     # --- results ------------------------------------------------------------------------------
     def constant(self) -> bool:
@@ -301,7 +341,7 @@ def accumulate(planes, *, thresholds=None, threshold_method: str = "costes", sha
     sums = PairSums(shape, total=total, seed=seed)
     for a, b, mask in planes():
         sums.add_first(a, b, mask)
-    sums.finish_first()
+    sums.finish_first(thresholds, threshold_method)
     if sums.bins is not None:
         for a, b, mask in planes():
             sums.add_second(a, b, mask)

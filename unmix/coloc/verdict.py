@@ -57,6 +57,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -65,7 +66,7 @@ from ..matrix import BleedThroughMatrix
 from . import statistics as coloc
 from .corrected import (NOISE_MODEL_RELATIVE_SD, ChannelSums, CorrectedCorrelation, NoiseSums, corrected_from_sums,
                         unmixing_rows)
-from .sums import Moments, PairSums
+from .sums import Moments, PairSums, Spectra
 
 VERDICTS = {
     "bleed-through-only": "the raw channels overlap, the unmixed labels do not: the overlap was bleed-through; "
@@ -205,14 +206,22 @@ NOISE_PLANES = 8
 DEPTH_TREND_FLAG = 0.1
 
 
-@dataclass(frozen=True)
+@dataclass
 class Plane:
     """One plane of an image made ready: background-subtracted, flat-fielded signal and its noise."""
 
     signal: np.ndarray     # (C, Y, X) float64
-    variance: np.ndarray   # (C, Y, X) noise variance of each pixel, same units
     valid: np.ndarray      # (Y, X) finite and unsaturated in every channel
     saturated: np.ndarray  # (Y, X)
+    unflattened: np.ndarray  # (C, Y, X) the signal before flat-fielding
+    noise: "NoiseModel"
+    flats: np.ndarray | None
+
+    @cached_property
+    def variance(self) -> np.ndarray:
+        """(C, Y, X) noise variance of each pixel, in the units of `signal` (computed when first asked)."""
+        variance = self.noise.variance(self.unflattened)
+        return variance if self.flats is None else variance / self.flats**2
 
 
 @dataclass(frozen=True)
@@ -256,12 +265,9 @@ class ImageSource:
             for c in range(raw.shape[0]):
                 saturated |= raw[c] >= self.levels[c]
         valid = ~saturated & np.all(np.isfinite(raw), axis=0)
-        signal = np.where(valid, signal, 0.0)
-        variance = self.noise.variance(signal)
-        if self.flats is not None:
-            signal = signal / self.flats
-            variance = variance / self.flats**2
-        return Plane(signal, variance, valid, saturated)
+        unflattened = np.where(valid, signal, 0.0)
+        signal = unflattened if self.flats is None else unflattened / self.flats
+        return Plane(signal, valid, saturated, unflattened, self.noise, self.flats)
 
     def nonnegative(self, z: int, plane: Plane) -> np.ndarray:
         """Non-negative abundances (K, Y, X) of plane `z`: the user's, or computed here."""
@@ -435,16 +441,16 @@ def judge_pair(source: ImageSource, pair: tuple[str, str], *, mask=None, rounds:
                 np.tensordot(after_rows, plane.signal, axes=(1, 0)))
 
     for z, plane, region, before, after in planes():
-        sides["before"].add_first(*before, region)
-        sides["after"].add_first(*after, region)
-        selected = plane.signal[:, region], plane.variance[:, region]
-        channel_planes[z].add(*selected)
-        before_noise[z].add(*selected)
-        after_noise[z].add(*selected)
+        f_m = Spectra.mask_spectrum(region)  # one region: its mask's spectrum serves both sides
+        sides["before"].add_first(*before, region, f_m)
+        sides["after"].add_first(*after, region, f_m)
+        channel_planes[z].add_plane(plane.signal, plane.variance, region)
+        before_noise[z].add_plane(plane.signal, plane.variance, region)
+        after_noise[z].add_plane(plane.signal, plane.variance, region)
         before_planes[z].add(before[0][region], before[1][region])
         saturated += int(np.count_nonzero(plane.saturated if regions is None else plane.saturated & regions[z]))
     for sums in sides.values():
-        sums.finish_first()
+        sums.finish_first(thresholds, threshold_method)
     for _, _, region, before, after in planes():
         sides["before"].add_second(*before, region)
         sides["after"].add_second(*after, region)
