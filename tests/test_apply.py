@@ -160,7 +160,8 @@ APPLY_BAD_INPUT = {
     "bad method": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--method", "magic"], "--method"),
     "missing background file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--background",
                                                  t / "dark.tif"], "dark.tif"),
-    "output is a file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", m], "is a file"),
+    "output is the matrix": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", m], "also an input"),
+    "output is a file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", _copy(m, t / "x.json")], "is a file"),
 }
 
 
@@ -198,14 +199,14 @@ def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monk
     # Disk full, simulated: writing fails after the first plane; no file appears under a final name.
     import unmix.engine.batch as batch
 
-    real = batch._planes_writer
+    real = batch._early_writeback
 
-    def full_disk(blocks, n_labels):
-        planes = real(blocks, n_labels)
+    def full_disk(planes, handle):
+        planes = real(planes, handle)
         yield next(planes)
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(batch, "_planes_writer", full_disk)
+    monkeypatch.setattr(batch, "_early_writeback", full_disk)
     code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out"], capsys)
     assert code == 2 and "No space left" in err[-1] and "free space" in err[-1]
     assert [p.name for p in (tmp_path / "out").iterdir()] == []
@@ -304,8 +305,11 @@ def test_interrupted_output_without_its_mask_is_redone(tmp_path, demo, demo_matr
     argv = ["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path, "--quiet"]
     assert _run(argv, capsys)[0] == 0
     (tmp_path / "sample.saturation.ome.tif").unlink()
-    stale = [tmp_path / ".sample.unmixed.ome.tif.999999999-deadbeef.partial",
-             tmp_path / ".unmix-manifest.json.999999999-deadbeef.partial"]
+    from unmix.io.atomic import machine_id
+
+    # Owned by a process of this machine that no longer runs.
+    stale = [tmp_path / f".sample.unmixed.ome.tif.999999999-{machine_id()}-abcdef.partial",
+             tmp_path / f".unmix-manifest.json.999999999-{machine_id()}-abcdef.partial"]
     for path in stale:
         path.write_bytes(b"half")
     assert _run(argv, capsys)[0] == 0

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import InputError
-from .args import check_output
+from .args import check_output, check_output_folder
 
 
 def add_parsers(sub, common) -> None:
@@ -75,11 +75,9 @@ def run_compare(args) -> int:
     from ..report.plots import comparison_figure, matrices_figure, save_png, spectra_figure
     from ..report.summary import table
 
+    outdir = check_output_folder(args.output, [args.measured, args.predicted, args.config])
     measured = load_matrix(args.measured)
     predicted = load_matrix(args.predicted)
-    outdir = Path(args.output)
-    if outdir.exists() and not outdir.is_dir():
-        raise InputError(f"-o {args.output}: is a file; give a folder")
     description = None
     if args.config:
         from ..optics.description import load_description

@@ -506,14 +506,36 @@ class _BlockSource:
             self.tif.close()
 
     def read(self, key: tuple) -> np.ndarray:
-        if self.pages is None:
-            import dask
+        rows = key[-2]
+        whole_planes = rows == slice(None)
+        if self.pages is not None and whole_planes:
+            pages = self.pages[key]
+            planes = self.tif.asarray(key=[int(i) for i in pages.ravel()], series=self.image.series, maxworkers=1)
+            return planes.reshape(pages.shape[:-2] + planes.shape[-2:])
+        if self.pages is not None and self._contiguous():
+            # A strip of rows of uncompressed planes: only those rows are read.
+            pages = self.pages[key[:-2] + (slice(None), slice(None))]
+            out = [self._rows(int(i), rows) for i in pages.ravel()]
+            return np.stack(out).reshape(pages.shape[:-2] + out[0].shape)
+        import dask
 
-            with dask.config.set(scheduler="synchronous"):
-                return np.asarray(self.image.data[key])
-        pages = self.pages[key]
-        planes = self.tif.asarray(key=[int(i) for i in pages.ravel()], series=self.image.series, maxworkers=1)
-        return planes.reshape(pages.shape[:-2] + planes.shape[-2:])
+        with dask.config.set(scheduler="synchronous"):
+            return np.asarray(self.image.data[key])
+
+    def _contiguous(self) -> bool:
+        page = self.tif.series[self.image.series].pages[0].keyframe
+        return bool(page.is_contiguous) and page.compression == 1 and page.dtype.kind in "uif"
+
+    def _rows(self, index: int, rows: slice) -> np.ndarray:
+        page = self.tif.series[self.image.series].pages[index]
+        key = page.keyframe
+        dtype = key.dtype.newbyteorder(self.tif.byteorder)
+        row_bytes = int(key.shape[-1]) * dtype.itemsize
+        handle = self.tif.filehandle
+        with handle.lock:
+            handle.seek(page.dataoffsets[0] + rows.start * row_bytes)
+            data = handle.read((rows.stop - rows.start) * row_bytes)
+        return np.frombuffer(data, dtype).reshape(rows.stop - rows.start, key.shape[-1]).astype(key.dtype)
 
 
 # Files recently read by blocks, most recent last; `stamp` (modification time, size) is part
