@@ -329,3 +329,243 @@ def test_a_dask_worker_dying_mid_run_changes_nothing(tmp_path):
     assert all(r.status == "written" for r in results["out"])
     names = [p.name for p in (tmp_path / "local").glob("*.ome.tif")]
     _same_outputs(tmp_path / "local", tmp_path / "cluster", names)
+
+
+# --- output sets, shared folders, the manifest ----------------------------------------
+
+def _matrix_b(folder: Path) -> Path:
+    """A second matrix of the same channels and labels, other coefficients."""
+    values = np.array([[1.0, 0.05, 0.01], [0.3, 1.0, 0.02], [0.05, 0.3, 1.0]])
+    return BleedThroughMatrix(kind="measured", channels=tuple(CHANNELS), labels=("Cobaltin", "Fernlight", "Emberin"),
+                              primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                              matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
+                              background=np.full(3, 100.0), background_source="dark",
+                              saturation=np.full(3, 4095.0)).save(folder / "b.json")
+
+
+def _apply(matrix, inputs, out, *extra) -> tuple[int, str]:
+    from unmix.cli import main
+
+    command = [sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(matrix), *map(str, inputs), "-o", str(out),
+               "--quiet", *extra]
+    done = subprocess.run(command, capture_output=True, text=True)
+    return done.returncode, done.stderr
+
+
+def _matrix_of(path: Path) -> str | None:
+    record = read_provenance(path)
+    return None if record is None else record["identity"]["matrix_sha256"]
+
+
+def _set_made_with(out: Path, stem: str, matrix: Path, members=("unmixed", "saturation", "residual")) -> None:
+    """Every member is there and records `matrix`; so does the manifest."""
+    sha = load_matrix(matrix).sha256()
+    for member in members:
+        assert _matrix_of(out / f"{stem}.{member}.ome.tif") == sha, member
+    entry = json.loads((out / "unmix-manifest.json").read_text())["outputs"][f"{stem}.unmixed.ome.tif"]
+    assert entry["matrix_sha256"] == sha
+    assert sorted(entry["members"]) == sorted(f"{stem}.{m}.ome.tif" for m in members)
+
+
+def test_a_companion_of_another_matrix_is_never_kept(tmp_path):
+    # --residual with A, then B with --overwrite (no residual), then B with --residual: the last
+    # run must write B's residual, never keep A's.
+    a, b = _matrix(tmp_path), _matrix_b(tmp_path)
+    inputs = _batch(tmp_path, files=1, planes=2, size=32)
+    out = tmp_path / "out"
+    assert _apply(a, inputs, out, "--residual")[0] == 0
+    assert _apply(b, inputs, out, "--overwrite")[0] == 0
+    # A's residual belonged to the set B replaced: it is gone, not left beside B's outputs.
+    assert not (out / "s0.residual.ome.tif").exists()
+    assert _apply(b, inputs, out, "--residual")[0] == 0
+    _set_made_with(out, "s0", b)
+
+
+def test_a_mixed_set_is_refused_then_replaced_whole(tmp_path):
+    # A run with --overwrite killed after renaming its first member leaves B's abundances beside
+    # A's mask and residual: a rerun without --overwrite names the foreign member (exit 2);
+    # with --overwrite it writes the whole set again, and the manifest records B.
+    a, b = _matrix(tmp_path), _matrix_b(tmp_path)
+    inputs = _batch(tmp_path, files=1, planes=2, size=32)
+    assert _apply(a, inputs, tmp_path / "out", "--residual")[0] == 0
+    assert _apply(b, inputs, tmp_path / "other", "--residual")[0] == 0
+    (tmp_path / "out" / "s0.unmixed.ome.tif").write_bytes((tmp_path / "other" / "s0.unmixed.ome.tif").read_bytes())
+    code, err = _apply(b, inputs, tmp_path / "out", "--residual")
+    assert code == 2 and "s0.saturation.ome.tif" in err and "--overwrite" in err, err
+    assert _apply(b, inputs, tmp_path / "out", "--residual", "--overwrite")[0] == 0
+    _set_made_with(tmp_path / "out", "s0", b)
+
+
+@pytest.mark.slow
+def test_overwrite_killed_at_ten_moments_then_rerun(tmp_path):
+    # Each member under a final name is always a complete output of A or of B; the rerun with
+    # --overwrite leaves B's whole set and B in the manifest.
+    a, b = _matrix(tmp_path), _matrix_b(tmp_path)
+    inputs = _batch(tmp_path, files=2, planes=12, size=96)
+    command = [sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(b), *inputs, "--quiet", "--residual",
+               "--overwrite"]
+    start = time.monotonic()
+    subprocess.run(command + ["-o", str(tmp_path / "timing")], check=True)
+    duration = time.monotonic() - start
+    shas = {load_matrix(a).sha256(), load_matrix(b).sha256()}
+    for point in range(10):
+        out = tmp_path / f"killed{point}"
+        assert _apply(a, inputs, out, "--residual")[0] == 0
+        process = subprocess.Popen(command + ["-o", str(out)])
+        time.sleep(duration * (point + 0.5) / 10)
+        process.send_signal(signal.SIGKILL)
+        process.wait()
+        for path in out.glob("*.ome.tif"):
+            assert _matrix_of(path) in shas
+            read_image(path)  # complete
+        subprocess.run(command + ["-o", str(out)], check=True)
+        for stem in ("s0", "s1"):
+            _set_made_with(out, stem, b)
+        assert not list(out.glob(".*.partial"))
+
+
+def test_manifest_entry_lost_to_a_kill_is_repaired(tmp_path):
+    # Killed between the last rename and the manifest update: the rerun keeps the outputs and
+    # makes their entry again from their own records (counts included).
+    matrix = _matrix(tmp_path)
+    inputs = _batch(tmp_path, files=2, planes=2, size=32)
+    out = tmp_path / "out"
+    assert _apply(matrix, inputs, out)[0] == 0
+    manifest = json.loads((out / "unmix-manifest.json").read_text())
+    entry = manifest["outputs"].pop("s1.unmixed.ome.tif")
+    (out / "unmix-manifest.json").write_text(json.dumps(manifest))
+    assert _apply(matrix, inputs, out)[0] == 0
+    repaired = json.loads((out / "unmix-manifest.json").read_text())["outputs"]["s1.unmixed.ome.tif"]
+    for key in ("input", "matrix_sha256", "members", "nan_pixels", "saturated_pixels"):
+        assert repaired[key] == entry[key], key
+
+
+@pytest.mark.slow
+def test_two_runs_with_different_matrices_never_replace_each_other(tmp_path):
+    # Started together into one folder without --overwrite: in every trial exactly one run
+    # succeeds and the other exits 2; every output and the manifest belong to the winner.
+    a, b = _matrix(tmp_path), _matrix_b(tmp_path)
+    inputs = _batch(tmp_path, files=2, planes=6, size=64)
+    for trial in range(6):
+        out = tmp_path / f"shared{trial}"
+        runs = {m: subprocess.Popen([sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(m), *inputs, "-o",
+                                     str(out), "--quiet"], stderr=subprocess.PIPE, text=True) for m in (a, b)}
+        codes = {m: run.wait() for m, run in runs.items()}
+        assert sorted(codes.values()) == [0, 2], {m.name: (c, runs[m].stderr.read()) for m, c in codes.items()}
+        winner = next(m for m, c in codes.items() if c == 0)
+        for stem in ("s0", "s1"):
+            _set_made_with(out, stem, winner, members=("unmixed", "saturation"))
+
+
+@pytest.mark.parametrize("content", ["{not json", '{"format": "something-else", "outputs": {}}', "folder"])
+def test_a_manifest_that_is_not_ours_is_refused_before_anything_is_written(tmp_path, content):
+    matrix = _matrix(tmp_path)
+    inputs = _batch(tmp_path, files=1, planes=2, size=32)
+    out = tmp_path / "out"
+    out.mkdir()
+    manifest = out / "unmix-manifest.json"
+    if content == "folder":
+        manifest.mkdir()
+    else:
+        manifest.write_text(content)
+    code, err = _apply(matrix, inputs, out)
+    assert code == 2 and err.count("error:") == 1 and "unmix-manifest.json" in err, err
+    assert sorted(p.name for p in out.iterdir()) == ["unmix-manifest.json"]
+    if content != "folder":
+        assert manifest.read_text() == content  # its entries are not lost
+
+
+def test_temporaries_are_removed_only_when_their_owner_is_surely_gone(tmp_path):
+    # Same host, boot and PID namespace: the process id decides. Another machine or container:
+    # only a lease untouched for LEASE_SECONDS (by the file system's clock) lets it go.
+    import os
+
+    from unmix.io.atomic import LEASE_SECONDS, machine_id, remove_stale_temporaries
+
+    final = tmp_path / "x.unmixed.ome.tif"
+    here = machine_id()
+    dead = tmp_path / f".x.unmixed.ome.tif.999999999-{here}-aaaaaa.partial"
+    alive = tmp_path / f".x.unmixed.ome.tif.{os.getppid()}-{here}-bbbbbb.partial"
+    elsewhere = tmp_path / ".x.unmixed.ome.tif.999999999-0badf00d-cccccc.partial"
+    abandoned = tmp_path / ".x.unmixed.ome.tif.999999999-0badf00d-dddddd.partial"
+    for path in (dead, alive, elsewhere, abandoned):
+        path.write_bytes(b"partial")
+    old = time.time() - LEASE_SECONDS - 120
+    os.utime(abandoned, (old, old))
+    assert sorted(remove_stale_temporaries(final)) == sorted([dead, abandoned])
+    assert alive.exists() and elsewhere.exists()
+
+
+def test_long_input_names_give_short_temporaries(tmp_path):
+    # A name near the 255-byte limit: temporaries stay within it; an output name beyond it is a
+    # one-line error naming the input.
+    from unmix.cli import main
+
+    matrix = _matrix(tmp_path)
+    (source,) = _batch(tmp_path, files=1, planes=1, size=16)
+    fits = tmp_path / ("n" * (255 - len(".saturation.ome.tif") - len(".ome.tif")) + ".ome.tif")
+    Path(source).rename(fits)
+    assert main(["apply", "--matrix", str(matrix), str(fits), "-o", str(tmp_path / "out"), "--quiet"]) == 0
+    too_long = tmp_path / ("n" * 240 + ".tif")
+    fits.rename(too_long)
+    code, err = _apply(matrix, [too_long], tmp_path / "out2")
+    assert code == 2 and err.count("\n") == 1 and "255" in err and "nnnn" in err, err
+    assert not (tmp_path / "out2").exists()
+
+
+def _unshared(command: list[str]) -> list[str]:
+    """`command` in a new PID namespace (as a second machine would see process ids)."""
+    return ["unshare", "--pid", "--fork", "--mount-proc", *command]
+
+
+def _can_unshare() -> bool:
+    import shutil
+
+    return shutil.which("unshare") is not None and subprocess.run(
+        _unshared(["true"]), capture_output=True).returncode == 0
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not _can_unshare(), reason="needs unshare --pid (root on Linux)")
+def test_runs_in_two_pid_namespaces_share_an_output_folder(tmp_path):
+    # The second run starts, in another PID namespace, while the first is writing: it must not
+    # take the first's temporaries for a dead run's. Twelve trials, both runs succeed in each.
+    matrix = _matrix(tmp_path)
+    inputs = _batch(tmp_path, files=2, planes=24, size=128)
+    command = [sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(matrix), *inputs, "--quiet"]
+    subprocess.run(command + ["-o", str(tmp_path / "clean")], check=True)
+    names = [p.name for p in (tmp_path / "clean").glob("*.ome.tif")]
+    for trial in range(12):
+        out = tmp_path / f"shared{trial}"
+        first = subprocess.Popen(command + ["-o", str(out)], stderr=subprocess.PIPE, text=True)
+        deadline = time.monotonic() + 60
+        while not list(out.glob(".*.partial")) and time.monotonic() < deadline and first.poll() is None:
+            time.sleep(0.005)
+        second = subprocess.Popen(_unshared(command + ["-o", str(out)]), stderr=subprocess.PIPE, text=True)
+        for run in (first, second):
+            assert run.wait() == 0, run.stderr.read()
+        _same_outputs(tmp_path / "clean", out, names)
+        assert not list(out.glob(".*.partial"))
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not _can_unshare(), reason="needs unshare --mount (root on Linux)")
+def test_read_only_install_and_unwritable_home(tmp_path, demo):
+    # The package folder mounted read-only and HOME where nothing can be written (a container's
+    # service account): measure and apply still work, without warnings.
+    package = Path(__file__).resolve().parent.parent / "unmix"
+    matrix = _matrix(tmp_path)
+    (sample,) = _batch(tmp_path, files=1, planes=1, size=32)
+    control = demo["controls"]["Fernlight"][0]
+    script = (f"mount --bind {package} {package} && mount -o remount,ro,bind {package} && "
+              f"{sys.executable} -m unmix.cli measure --control Fernlight={control} --bootstrap 200 --quiet "
+              f"-o {tmp_path / 'm.json'} && "
+              f"{sys.executable} -m unmix.cli apply --matrix {matrix} {sample} -o {tmp_path / 'out'} --quiet")
+    environment = {"PATH": "/usr/bin:/bin", "HOME": "/proc/no-home", "TMPDIR": str(tmp_path / "tmp")}
+    (tmp_path / "tmp").mkdir()
+    done = subprocess.run(["unshare", "--mount", "sh", "-c", script], capture_output=True, text=True,
+                          env=environment)
+    assert done.returncode == 0, done.stderr
+    assert done.stderr == ""
+    assert (tmp_path / "m.json").exists() and (tmp_path / "out" / "s0.unmixed.ome.tif").exists()
+    assert list((tmp_path / "tmp").glob("unmix-numba-cache-*/*"))  # the kernels were cached there
