@@ -45,6 +45,7 @@ def files(tmp_path, demo):
     _descriptions(tmp_path)
     _coloc_files(tmp_path, cob.shape[1:])
     _odd_files(tmp_path)
+    _unsafe_files(tmp_path, cob)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
     return paths
@@ -90,6 +91,34 @@ def _odd_files(folder: Path) -> None:
     for name, change in variants.items():
         (folder / f"{name}.json").write_text(json.dumps({**good, **change}))
     (folder / "nan_matrix.json").write_text(json.dumps(good).replace('"matrix": [[1.0', '"matrix": [[NaN', 1))
+
+
+def _unsafe_files(folder: Path, pixels) -> None:
+    """Inputs that hang, loop, never end or would be written into: a FIFO, a symbolic link loop,
+    an OME-Zarr input, an output folder holding a foreign manifest, a text file too large, deeply
+    nested TOML, a needlessly fine grid, descriptions reading /dev/zero."""
+    import os
+
+    from unmix.io.images import Image, write_ome_zarr
+
+    os.mkfifo(folder / "pipe.tif")
+    os.symlink(folder / "loop_b.tif", folder / "loop_a.tif")
+    os.symlink(folder / "loop_a.tif", folder / "loop_b.tif")
+    write_ome_zarr(folder / "input.ome.zarr", Image(pixels, "CYX", ("blue450", "green525", "orange600")))
+    (folder / "foreign_manifest").mkdir()
+    (folder / "foreign_manifest" / "unmix-manifest.json").write_text('{"format": "someone-else"}')
+    (folder / "manifest_folder" / "unmix-manifest.json").mkdir(parents=True)
+    with open(folder / "huge_matrix.json", "wb") as handle:
+        handle.truncate(65 << 20)  # sparse: costs no disk
+    (folder / "nested.toml").write_text(DESCRIPTION + "deep = " + "[" * 5000 + "]" * 5000 + "\n")
+    (folder / "fine_grid.toml").write_text(DESCRIPTION.replace("version = 1\n", "version = 1\n"
+                                                               "grid = { start = 400, stop = 700, step = 1e-7 }\n", 1))
+    (folder / "zero_csv.toml").write_text(DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "/dev/zero" }'))
+    (folder / "zero_include.toml").write_text(DESCRIPTION.replace("version = 1\n", 'version = 1\n'
+                                                                  'include = ["/dev/zero"]\n', 1))
+    (folder / "long_input").mkdir()
+    (folder / "long_input" / ("n" * 240 + ".tif")).write_bytes((folder / "two_channels.ome.tif").read_bytes())
+    (folder / "a_file").write_text("not a folder\n")
 
 
 def _apply(files, matrix, image="cob"):
@@ -232,19 +261,75 @@ BAD_INPUT = {
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
                              "notes.tif"),
+    "fifo as an image": (lambda f: _measure(f"A={f['pipe']}", extra=["-o", f["out"]]), "not a regular file"),
+    "fifo as a matrix": (lambda f: ["apply", "--matrix", f["pipe"], f["cob"], "-o", _folder(f, "unmixed")],
+                         "not a regular file"),
+    "fifo as a description": (lambda f: ["predict", "--config", f["pipe"], "-o", f["out"]], "not a regular file"),
+    "device as a matrix": (lambda f: ["apply", "--matrix", "/dev/zero", f["cob"], "-o", _folder(f, "unmixed")],
+                           "/dev/zero"),
+    "device as a description": (lambda f: ["predict", "--config", "/dev/zero", "-o", f["out"]], "/dev/zero"),
+    "device as a spectrum": (lambda f: _predict(f, "zero_csv"), "/dev/zero"),
+    "device as an include": (lambda f: _predict(f, "zero_include"), "/dev/zero"),
+    "device as a coloc file": (lambda f: ["report", "--matrix", _folder(f, "coloc_matrix.json"), "--coloc", "/dev/zero",
+                                          "-o", _folder(f, "r.html")], "/dev/zero"),
+    "text file too large": (lambda f: ["apply", "--matrix", f["huge_matrix"], f["cob"], "-o", _folder(f, "unmixed")],
+                            "too large"),
+    "description nested too deeply": (lambda f: _predict(f, "nested"), "nested too deeply"),
+    "grid step too fine": (lambda f: _predict(f, "fine_grid"), "step"),
+    "symbolic link loop as a control": (lambda f: _measure(f"A={_folder(f, 'loop_a.tif')}", extra=["-o", f["out"]]),
+                                        "loop_a.tif"),
+    "symbolic link loop as -o": (lambda f: _measure(f"A={f['cob']}", extra=["-o", _folder(f, "loop_a.tif")]),
+                                 "loop_a.tif"),
+    "apply output is the zarr input": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["input"],
+                                                  "-o", f["input"]], "also an input"),
+    "apply output inside the zarr input": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"),
+                                                      f["input"], "-o", Path(f["input"]) / "sub"], "inside the input"),
+    "measure output inside a zarr control": (lambda f: _measure(f"A={f['input']}", extra=[
+        "-o", Path(f["input"]) / "m.json"]), "inside the input"),
+    "coloc json inside the zarr input": (lambda f: ["coloc", f["input"], "--matrix", _folder(f, "coloc_matrix.json"),
+                                                    "--labels", "Cobaltin,Emberin", "--json",
+                                                    Path(f["input"]) / "c.json"], "inside the input"),
+    "output name too long": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"),
+                                        _folder(f, "long_input/" + "n" * 240 + ".tif"), "-o", _folder(f, "unmixed")],
+                             "255"),
+    "foreign manifest": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                    _folder(f, "foreign_manifest")], "unmix-manifest.json"),
+    "manifest is a folder": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                        _folder(f, "manifest_folder")], "unmix-manifest.json"),
+    "scheduler not an address": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                            _folder(f, "unmixed"), "--scheduler", "nonsense"], "--scheduler"),
+    "memory not a size": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                     _folder(f, "unmixed"), "--memory", "lots"], "--memory"),
+    "memory too small": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                    _folder(f, "unmixed"), "--memory", "1K"], "--memory"),
+    "bootstrap beyond bound": (lambda f: _measure(f"A={f['cob']}", extra=["--bootstrap", "100000000", "-o",
+                                                                         f["out"]]), "--bootstrap"),
+    "negative seed": (lambda f: _measure(f"A={f['cob']}", extra=["--seed", "-1", "-o", f["out"]]), "--seed"),
+    "saturated percent out of range": (lambda f: _measure(f"A={f['cob']}", extra=["--max-saturated-percent", "nan",
+                                                                                 "-o", f["out"]]),
+                                       "--max-saturated-percent"),
+    "compare negative tolerance": (lambda f: [*_compare_pair(f, same=True), "--tolerance", "-1"], "--tolerance"),
+    "compare tolerance nan": (lambda f: [*_compare_pair(f, same=True), "--tolerance", "nan"], "--tolerance"),
+    "compare output below a file": (lambda f: [*_compare_pair(f, same=True)[:-1], _folder(f, "a_file/sub")],
+                                    "a_file"),
+    "demo output is a file": (lambda f: ["demo", "-o", _folder(f, "a_file")], "a_file"),
 }
+
+
+def _folder(files, name):
+    return Path(files["out"]).parent / name
 
 
 def _predict(files, variant):
     return ["predict", "--config", Path(files["out"]).parent / f"{variant}.toml", "-o", files["out"]]
 
 
-def _compare_pair(files, labels=False):
+def _compare_pair(files, labels=False, same=False):
     folder = Path(files["out"]).parent
     measured = BleedThroughMatrix(kind="measured", channels=("g", "o"), labels=("A",), primary={"A": "g"},
                                   matrix=np.array([[1.0], [0.2]]), ci95_low=np.array([[1.0], [0.1]]),
                                   ci95_high=np.array([[1.0], [0.3]]), background=np.zeros(2), background_source="dark")
-    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels else ("g", "r"),
+    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels or same else ("g", "r"),
                                    labels=("Z",) if labels else ("A",), primary={"Z" if labels else "A": "g"},
                                    matrix=np.array([[1.0], [0.2]]))
     measured.save(folder / "measured.json")
@@ -256,9 +341,10 @@ def _compare_pair(files, labels=False):
 def test_bad_input_one_line_exit_2_nothing_written(case, files, capsys):
     build, expected = BAD_INPUT[case]
     argv = [str(a) for a in build(files)]
-    inputs = [p for p in files.values() if Path(p).is_file()]
+    folder = Path(files["out"]).parent
+    inputs = [p for p in folder.rglob("*") if p.is_file() and not p.is_symlink() and p.name != "pipe.tif"]
     before = fingerprint(inputs)
-    listing = sorted(p.name for p in Path(files["out"]).parent.iterdir())
+    listing = sorted(str(p.relative_to(folder)) for p in folder.rglob("*"))
     assert main(argv) == 2
     err = capsys.readouterr().err.strip().splitlines()
     errors = [line for line in err if not line.startswith("warning:")]
@@ -266,7 +352,7 @@ def test_bad_input_one_line_exit_2_nothing_written(case, files, capsys):
     assert errors[0].startswith("error: ") and expected in errors[0], errors[0]
     assert "Traceback" not in "\n".join(err)
     assert fingerprint(inputs) == before  # inputs untouched
-    assert sorted(p.name for p in Path(files["out"]).parent.iterdir()) == listing  # nothing written
+    assert sorted(str(p.relative_to(folder)) for p in folder.rglob("*")) == listing  # nothing written
 
 
 def test_measure_success_writes_matrix_and_csv(files, capsys, tmp_path):

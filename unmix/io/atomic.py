@@ -50,14 +50,18 @@ _NAME_MAX = 255
 _TOKEN_ROOM = 1 + 1 + 10 + 1 + 8 + 1 + 6 + len(PARTIAL_SUFFIX)
 
 
-def safe_file_name(text: str) -> str:
+def safe_file_name(text: str, longest: int = 64) -> str:
     """`text` made safe as one file name: letters, digits, '-', '_' and '.' kept, anything else
-    (path separators included) replaced by '_', no leading dot, never empty. Label and channel
-    names from users' files become parts of output names only through this."""
+    (path separators included) replaced by '_', no leading dot, never empty, at most `longest`
+    characters (a longer one keeps its start and a hash of the whole, so it stays unique). Label
+    and channel names from users' files become parts of output names only through this."""
     import re
 
-    name = re.sub(r"[^A-Za-z0-9._-]", "_", str(text)).lstrip(".")
-    return name or "_"
+    name = re.sub(r"[^A-Za-z0-9._-]", "_", str(text)).lstrip(".") or "_"
+    if len(name) > longest:
+        digest = hashlib.sha256(str(text).encode("utf-8", "replace")).hexdigest()[:10]
+        name = f"{name[:longest - 11]}~{digest}"
+    return name
 
 
 def check_name_length(final: str | os.PathLike, option: str = "-o") -> None:

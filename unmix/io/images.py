@@ -31,7 +31,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from .atomic import atomic_output
-from ..errors import InputError
+from ..errors import InputError, check_regular_file
 
 CANONICAL_AXES = "TCZYX"
 TIFF_SUFFIXES = (".ome.tif", ".ome.tiff", ".tif", ".tiff")
@@ -189,8 +189,8 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
         For a missing, unreadable or unsupported file, naming it.
     """
     path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: no such file; check the path")
+    if not path.is_dir():
+        check_regular_file(path, "image file")  # a pipe or a device would block or never end
     if axes is not None:
         try:
             axes = check_axes(axes, "--axes")
