@@ -420,3 +420,45 @@ def test_predict_compare_and_plan_from_the_command_line(tmp_path, capsys):
     capsys.readouterr()
     assert main(["plan", str(description)]) == 0
     assert "sequential" in capsys.readouterr().out
+
+
+def _maths_matrices(folder: Path) -> tuple[Path, Path]:
+    """A measured and a predicted matrix whose label and channel names matplotlib would read as
+    mathematics (invented names)."""
+    labels, channels = ("$x^$", "B$"), ("g$_", "$o")
+    measured = BleedThroughMatrix(kind="measured", channels=channels, labels=labels,
+                                  primary={labels[0]: channels[0], labels[1]: channels[1]},
+                                  matrix=np.array([[1.0, 0.1], [0.2, 1.0]]),
+                                  ci95_low=np.array([[1.0, 0.05], [0.1, 1.0]]),
+                                  ci95_high=np.array([[1.0, 0.15], [0.3, 1.0]]), background=np.zeros(2),
+                                  background_source="dark")
+    predicted = BleedThroughMatrix(kind="predicted", channels=channels, labels=labels,
+                                   primary={labels[0]: channels[0], labels[1]: channels[1]},
+                                   matrix=np.array([[1.0, 0.4], [0.21, 1.0]]))
+    return measured.save(folder / "maths_measured.json"), predicted.save(folder / "maths_predicted.json")
+
+
+def test_names_that_look_like_mathematics_are_drawn_as_text(tmp_path, demo, capsys):
+    measured, predicted = _maths_matrices(tmp_path)
+    assert main(["compare", str(measured), str(predicted), "-o", str(tmp_path / "cmp"), "--quiet"]) == 0
+    assert sorted(p.name for p in (tmp_path / "cmp").iterdir()) == ["compare-matrices.png", "compare-scatter.png",
+                                                                    "compare.csv", "compare.json"]
+    assert main(["report", "--matrix", str(measured), "--predicted", str(predicted), "-o", str(tmp_path / "r.html"),
+                 "--quiet"]) == 0
+    from unmix.report.plots import plain
+
+    assert plain("$x^$") == r"\$x^\$"  # matplotlib's escape for a literal dollar sign
+
+
+def test_compare_writes_nothing_when_a_figure_fails(tmp_path, monkeypatch, capsys):
+    # Every figure is drawn before any file is written: a failing figure leaves no table behind.
+    import unmix.report.plots as plots
+
+    measured, predicted = _maths_matrices(tmp_path)
+
+    def broken(comparison):
+        raise ValueError("figure failed")
+
+    monkeypatch.setattr(plots, "comparison_figure", broken)
+    assert main(["compare", str(measured), str(predicted), "-o", str(tmp_path / "cmp")]) == 1
+    assert not (tmp_path / "cmp").exists() or not list((tmp_path / "cmp").iterdir())

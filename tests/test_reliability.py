@@ -569,3 +569,118 @@ def test_read_only_install_and_unwritable_home(tmp_path, demo):
     assert done.stderr == ""
     assert (tmp_path / "m.json").exists() and (tmp_path / "out" / "s0.unmixed.ome.tif").exists()
     assert list((tmp_path / "tmp").glob("unmix-numba-cache-*/*"))  # the kernels were cached there
+
+
+# --- disk full: a real small file system (tmpfs) ---------------------------------------
+
+def _can_mount() -> bool:
+    import os
+    import tempfile
+
+    if os.geteuid() != 0:
+        return False
+    with tempfile.TemporaryDirectory() as folder:
+        if subprocess.run(["mount", "-t", "tmpfs", "-o", "size=64k", "tmpfs", folder],
+                          capture_output=True).returncode != 0:
+            return False
+        subprocess.run(["umount", folder], check=True)
+    return True
+
+
+needs_mount = pytest.mark.skipif(not _can_mount(), reason="needs root to mount a small tmpfs")
+
+
+@pytest.fixture
+def small_disk(tmp_path):
+    """A function mounting a tmpfs of `size` bytes at a new folder (unmounted afterwards)."""
+    mounted = []
+
+    def mount(size: int, fill: bool = False) -> Path:
+        folder = tmp_path / f"disk{len(mounted)}"
+        folder.mkdir()
+        subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(folder)], check=True)
+        mounted.append(folder)
+        if fill:  # nothing left for anyone
+            import os
+
+            handle = os.open(folder / ".filler", os.O_WRONLY | os.O_CREAT)
+            with pytest.raises(OSError):
+                while True:
+                    os.write(handle, b"\0" * 4096)
+            os.close(handle)
+        return folder
+
+    yield mount
+    for folder in mounted:
+        subprocess.run(["umount", "-l", str(folder)], check=False)
+
+
+def _one_error(stderr: str, *expected: str) -> None:
+    errors = [line for line in stderr.splitlines() if line and not line.startswith("warning:")]
+    assert len(errors) == 1 and errors[0].startswith("error: ") and "Traceback" not in stderr, stderr
+    for text in expected:
+        assert text in errors[0], errors[0]
+
+
+@needs_mount
+def test_disk_full_during_a_tiff_batch_keeps_finished_outputs(tmp_path, small_disk):
+    matrix = _matrix(tmp_path)
+    inputs = _batch(tmp_path, files=2, planes=12, size=96)  # about 1.35 MB of outputs per input
+    out = small_disk(2_000_000)
+    code, err = _apply(matrix, inputs, out)
+    assert code == 2
+    _one_error(err, "s1.unmixed.ome.tif", "No space left", "free space")
+    assert sorted(p.name for p in out.iterdir() if not p.name.startswith(".")) == [
+        "s0.saturation.ome.tif", "s0.unmixed.ome.tif", "unmix-manifest.json"]
+    assert not list(out.glob(".*.partial"))
+    _set_made_with(out, "s0", matrix, members=("unmixed", "saturation"))
+
+
+@needs_mount
+def test_disk_full_during_a_zarr_batch_leaves_no_hidden_folder(tmp_path, small_disk):
+    from unmix.io.images import Image, write_ome_zarr
+
+    matrix = _matrix(tmp_path)
+    rng = np.random.default_rng(3)
+    source = tmp_path / "z.ome.zarr"
+    write_ome_zarr(source, Image(rng.integers(90, 3000, size=(3, 40, 128, 128)).astype(np.uint16), "CZYX",
+                                 tuple(CHANNELS)))
+    for trial in range(3):
+        out = small_disk(400_000 + 200_000 * trial)
+        code, err = _apply(matrix, [source], out)
+        assert code == 2
+        _one_error(err, "No space left")
+        assert list(out.iterdir()) == []  # no hidden ".partial" folder recreated by running tasks
+
+
+def _full_disk_commands(tmp_path: Path, demo, disk: Path) -> dict:
+    from unmix.io.shipped import shipped_dir
+
+    matrix = _matrix(tmp_path)
+    description = shipped_dir("configs") / "demo_optics.toml"
+    predicted = tmp_path / "p.json"
+    subprocess.run([sys.executable, "-m", "unmix.cli", "predict", "--config", str(description), "-o", str(predicted),
+                    "--quiet"], check=True)
+    measured = tmp_path / "measured.json"
+    subprocess.run([sys.executable, "-m", "unmix.cli", "measure", *[
+        f"--control={label}={','.join(map(str, paths))}" for label, paths in demo["controls"].items()],
+        "--bootstrap", "200", "-o", str(measured), "--quiet"], check=True)
+    return {
+        "measure": ["measure", f"--control=Fernlight={demo['controls']['Fernlight'][0]}", "--bootstrap", "200",
+                    "-o", str(disk / "m.json")],
+        "predict": ["predict", "--config", str(description), "-o", str(disk / "p.json")],
+        "compare": ["compare", str(measured), str(predicted), "-o", str(disk / "cmp")],
+        "report": ["report", "--matrix", str(matrix), "-o", str(disk / "r.html")],
+        "coloc": ["coloc", str(demo["sample"]), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin",
+                  "--rounds", "19", "--json", str(disk / "c.json")],
+    }
+
+
+@needs_mount
+def test_disk_full_for_every_other_command_is_one_line(tmp_path, demo, small_disk):
+    disk = small_disk(64 * 1024, fill=True)
+    for name, argv in _full_disk_commands(tmp_path, demo, disk).items():
+        done = subprocess.run([sys.executable, "-m", "unmix.cli", *argv, "--quiet"], capture_output=True, text=True)
+        assert done.returncode == 2, (name, done.stderr)
+        _one_error(done.stderr, "No space left")
+        assert [p.name for p in disk.rglob("*") if p.name != ".filler"] in ([], ["cmp"]), name

@@ -274,10 +274,16 @@ def discard_output(final: Path) -> None:
 
 def write_fault(exc: OSError, final: Path) -> InputError | None:
     """The one-line InputError for a fault of the output folder (full, read-only ...), else None."""
-    if isinstance(exc, OSError) and exc.errno in WRITE_FAULTS:
-        return InputError(f"{final}: cannot write ({exc.strerror or os.strerror(exc.errno)}); "
-                          "free space or choose another output location")
-    return None
+    if not isinstance(exc, OSError):
+        return None
+    if exc.errno in WRITE_FAULTS:
+        reason = exc.strerror or os.strerror(exc.errno)
+    elif exc.errno is None and " requested and " in str(exc) and str(exc).endswith(" written"):
+        # numpy's tofile reports a short write, which on a regular file means the disk is full.
+        reason = f"{os.strerror(errno.ENOSPC)}: {exc}"
+    else:
+        return None
+    return InputError(f"{final}: cannot write ({reason}); free space or choose another output location")
 
 
 @contextlib.contextmanager
