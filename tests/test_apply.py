@@ -162,7 +162,23 @@ APPLY_BAD_INPUT = {
                                                  t / "dark.tif"], "dark.tif"),
     "output is the matrix": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", m], "also an input"),
     "output is a file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", _copy(m, t / "x.json")], "is a file"),
+    "damaged strip": (lambda t, d, m: ["--matrix", m, _corrupt_strip(t), "-o", t / "out"], "damaged image data"),
 }
+
+
+def _corrupt_strip(folder: Path) -> Path:
+    """A zlib-compressed OME-TIFF whose second strip is overwritten with garbage."""
+    rng = np.random.default_rng(7)
+    path = folder / "corrupt.ome.tif"
+    tifffile.imwrite(path, rng.integers(90, 3000, size=(3, 64, 64)).astype(np.uint16), ome=True,
+                     compression="zlib", rowsperstrip=16, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    data = bytearray(path.read_bytes())
+    with tifffile.TiffFile(path) as tif:
+        offset = tif.pages[1].dataoffsets[1]
+    data[offset:offset + 20] = b"\xff" * 20
+    path.write_bytes(bytes(data))
+    return path
 
 
 def _copy(source, target):
@@ -209,7 +225,7 @@ def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monk
     monkeypatch.setattr(batch, "_early_writeback", full_disk)
     code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out"], capsys)
     assert code == 2 and "No space left" in err[-1] and "free space" in err[-1]
-    assert [p.name for p in (tmp_path / "out").iterdir()] == []
+    assert not (tmp_path / "out").exists()  # not even the folder this run would have made
 
 
 def test_several_series_are_unmixed_series_by_series(tmp_path, demo_matrix, capsys):
@@ -408,3 +424,48 @@ def test_ome_zarr_tasks_store_blocks_locally_and_the_client_on_a_cluster(tmp_pat
     for folder in ("local", "cluster"):
         stored = np.asarray(zarr.open_array(str(tmp_path / folder / "z.unmixed.ome.zarr" / "0"), mode="r")[...])
         np.testing.assert_array_equal(stored, expected)
+
+
+def test_pyramidal_ome_tiff_is_read_at_full_resolution(tmp_path, demo_matrix, capsys):
+    # A pyramid (sub-resolutions in SubIFDs): apply and the eager reader both take level 0.
+    from unmix.io.images import read_image
+
+    rng = np.random.default_rng(8)
+    data = rng.integers(90, 3000, size=(3, 64, 96)).astype(np.uint16)
+    path = tmp_path / "pyramid.ome.tif"
+    with tifffile.TiffWriter(path, ome=True) as writer:
+        writer.write(data, subifds=1, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+        writer.write(data[:, ::2, ::2], subfiletype=1, photometric="minisblack")
+    np.testing.assert_array_equal(read_image(path).data, data)
+    code, _, err = _run(["apply", "--matrix", demo_matrix, path, "-o", tmp_path / "out", "--quiet"], capsys)
+    assert code == 0, err
+    matrix = load_matrix(demo_matrix)
+    # numpy reference: the same solver on the full-resolution pixels read by tifffile directly
+    np.testing.assert_array_equal(read_image(tmp_path / "out" / "pyramid.unmixed.ome.tif").data,
+                                  Unmixer(matrix.matrix).unmix(tifffile.imread(path), matrix.background))
+
+
+@pytest.mark.parametrize("compression", ["lzw", "zstd"])
+def test_a_missing_codec_names_what_to_install(tmp_path, demo_matrix, compression):
+    # imagecodecs is a dependency; an installation without it must say so, in apply as in measure.
+    import subprocess
+    import sys
+
+    rng = np.random.default_rng(9)
+    path = tmp_path / f"{compression}.ome.tif"
+    tifffile.imwrite(path, rng.integers(90, 3000, size=(3, 32, 32)).astype(np.uint16), ome=True,
+                     compression=compression, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    hide = "import sys; sys.modules['imagecodecs'] = None; sys.modules['compression'] = None; "
+    for argv in (["apply", "--matrix", str(demo_matrix), str(path), "-o", str(tmp_path / "out")],
+                 ["measure", "--control", f"A={path}", "-o", str(tmp_path / "m.json")]):
+        done = subprocess.run([sys.executable, "-c", hide + "from unmix.cli.main import main; "
+                               f"sys.exit(main({argv!r}))"], capture_output=True, text=True)
+        assert done.returncode == 2, done.stderr
+        errors = [line for line in done.stderr.splitlines() if line.startswith("error:")]
+        assert len(errors) == 1 and "pip install imagecodecs" in errors[0] and path.name in errors[0], done.stderr
+        assert "damaged" not in errors[0]
+    code = subprocess.run([sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(demo_matrix), str(path),
+                           "-o", str(tmp_path / "out"), "--quiet"]).returncode
+    assert code == 0  # with the codec installed

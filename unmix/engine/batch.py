@@ -947,11 +947,17 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
                 remove_stale_temporaries(name)
         remove_stale_temporaries(manifest_path)
     results = []
+    made = not outdir.exists()
     try:
         for path, stem in plan:
             results.append(_apply_one(matrix, unmixer, matrix_sha, path, stem, outdir, settings, compute,
                                       compute_is_local=client is None))
     finally:
+        if made and outdir.is_dir() and not any(r.status == "written" for r in results):
+            # Nothing was written: the folder this run made goes too (a lock file is all it may hold).
+            with contextlib.suppress(OSError):
+                (outdir / f".{MANIFEST}.lock").unlink(missing_ok=True)
+                outdir.rmdir()
         if client is not None:
             client.close()
         from ..io.images import close_block_sources

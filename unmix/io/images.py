@@ -319,7 +319,7 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: li
             raise
         except Exception as exc:
             tif.close()
-            raise InputError(f"{path}: damaged or unsupported TIFF ({_short(exc)}); check the file") from None
+            raise tiff_failure(exc, path) from None
         if not lazy:
             tif.close()
         elif open_files is not None:
@@ -362,6 +362,40 @@ def _check_extent(series, path: Path, index: int) -> None:
             raise InputError(f"{path}: truncated: image data end beyond the end of the file; copy the file again")
 
 
+def tiff_failure(exc: Exception, path) -> InputError:
+    """The one-line InputError for a TIFF whose pixels cannot be decoded: the codec is not
+    installed (say what to install), or the data are damaged (say so)."""
+    text = _short(exc)
+    if isinstance(exc, ImportError) or "imagecodecs" in text:
+        return InputError(f"{path}: its pixels are compressed with a method this installation cannot decode "
+                          f"({text}); install the imagecodecs package (pip install imagecodecs)")
+    return InputError(f"{path}: damaged image data, cannot be decoded ({type(exc).__name__}: {text}); "
+                      "copy or export the file again")
+
+
+def _check_codec(tif, series, path: Path) -> None:
+    """Refuse, before any pixel is read, a series compressed with a codec that is not installed."""
+    import tifffile
+
+    page = series.pages[0]
+    if page is None:
+        return
+    compression = int(page.keyframe.compression)
+    if compression == 1:
+        return
+    try:
+        codec = tifffile.TIFF.DECOMPRESSORS[compression]
+        fh = tif.filehandle
+        with fh.lock:
+            fh.seek(page.dataoffsets[0])
+            segment = fh.read(min(page.databytecounts[0], 1 << 20))
+        codec(segment)
+    except (ImportError, KeyError) as exc:
+        raise tiff_failure(exc, path) from None
+    except Exception:  # noqa: BLE001 - a partial segment or a codec needing tables: the real read decides
+        pass
+
+
 def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
     ome = _ome_channel_names_and_sizes(tif.ome_metadata) if tif.is_ome else []
     images = []
@@ -372,12 +406,14 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
         if n_pixels == 0 or n_pixels > MAX_PIXELS:
             raise InputError(f"{path}: series {index} declares an impossible shape {tuple(series.shape)}; check the file")
         _check_extent(series, path, index)
+        _check_codec(tif, series, path)
         axes = _tiff_axes(tif, series, axes_override, path)
         if lazy:
             import dask.array as da
             import zarr
 
-            store = series.aszarr()
+            # Level 0 of a pyramid: the full resolution, as the eager reader gives.
+            store = series.aszarr(level=0)
             data = da.from_zarr(zarr.open(store, mode="r"))
         else:
             data = series.asarray()
@@ -506,6 +542,14 @@ class _BlockSource:
             self.tif.close()
 
     def read(self, key: tuple) -> np.ndarray:
+        try:
+            return self._read(key)
+        except (InputError, OSError):
+            raise
+        except Exception as exc:  # a codec missing or a damaged strip, found only now
+            raise tiff_failure(exc, self.image.source) from None
+
+    def _read(self, key: tuple) -> np.ndarray:
         rows = key[-2]
         whole_planes = rows == slice(None)
         if self.pages is not None and whole_planes:
