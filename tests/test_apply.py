@@ -469,3 +469,14 @@ def test_a_missing_codec_names_what_to_install(tmp_path, demo_matrix, compressio
     code = subprocess.run([sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(demo_matrix), str(path),
                            "-o", str(tmp_path / "out"), "--quiet"]).returncode
     assert code == 0  # with the codec installed
+
+
+def test_glob_rerun_into_the_input_folder_skips_earlier_outputs(tmp_path, demo, demo_matrix, capsys):
+    # Outputs written beside the inputs match the same glob on the rerun: they are not inputs.
+    _copy(demo["sample"], tmp_path / "sample.ome.tif")
+    argv = ["apply", "--matrix", demo_matrix, str(tmp_path / "*.tif"), "-o", tmp_path, "--quiet"]
+    assert _run(argv, capsys)[0] == 0
+    code, out, err = _run([*argv[:-1]], capsys)
+    assert code == 0, err
+    manifest = json.loads((tmp_path / "unmix-manifest.json").read_text())
+    assert list(manifest["outputs"]) == ["sample.unmixed.ome.tif"]

@@ -59,7 +59,8 @@ from ..errors import InputError
 from ..io.atomic import (atomic_outputs, check_name_length, check_outside_inputs, discard_output, folder_lock,
                          leased,
                          remove_stale_temporaries, temporary_sibling, write_fault, write_text_atomic)
-from ..io.images import Image, check_axes, is_zarr_path, open_images, output_stem, read_images, read_provenance
+from ..io.images import (Image, check_axes, is_zarr_path, names_text, open_images, output_stem, read_images,
+                         read_provenance)
 from ..matrix import BleedThroughMatrix
 from .solver import Unmixer
 
@@ -336,7 +337,8 @@ def _matched(matrix: BleedThroughMatrix, image: Image) -> Image:
     missing = [c for c in matrix.channels if c not in image.channel_names]
     if missing:
         raise InputError(
-            f"{image.name}: lacks channels {missing} that the matrix needs (it has {list(image.channel_names)}); "
+            f"{image.name}: lacks channels {names_text(missing)} that the matrix needs (it has "
+            f"{names_text(image.channel_names)}); "
             "check the channel names or give --channel-names"
         )
     extra = [c for c in image.channel_names if c not in matrix.channels]
@@ -345,7 +347,7 @@ def _matched(matrix: BleedThroughMatrix, image: Image) -> Image:
 
         from ..errors import InputWarning
 
-        warnings.warn(f"{image.name}: channels {extra} are not in the matrix and are ignored", InputWarning,
+        warnings.warn(f"{image.name}: channels {names_text(extra)} are not in the matrix and are ignored", InputWarning,
                       stacklevel=3)
     return image.select_channels(matrix.channels)
 
@@ -766,7 +768,10 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
     see the output folder), overlapped with the computing of the next batch.
     """
     import zarr
-    from ome_zarr.writer import write_multiscales_metadata
+
+    from ..io.images import ome_zarr_writer
+
+    write_multiscales_metadata = ome_zarr_writer().write_multiscales_metadata
 
     tallies = []
     wanted = _wanted(settings)

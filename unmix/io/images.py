@@ -144,6 +144,30 @@ def _default_channel_names(n: int) -> tuple[str, ...]:
     return tuple(f"ch{i}" for i in range(n))
 
 
+def names_text(names: Sequence[str], most: int = 8) -> str:
+    """Channel or label names for a message: the first `most`, and how many more."""
+    names = [str(n) for n in names]
+    shown = ", ".join(repr(n) for n in names[:most])
+    return f"[{shown}]" if len(names) <= most else f"[{shown} and {len(names) - most} more]"
+
+
+def _usable_names(names: list, n_channels: int, path) -> tuple[str, ...]:
+    """The metadata's channel names, or ch0, ch1 ... when there are none or they cannot name the
+    channels (a warning says which, when the metadata gave some)."""
+    if len(names) == n_channels and len(set(names)) == len(names) and all(names):
+        return tuple(names)
+    if any(names):
+        import warnings
+
+        from ..errors import InputWarning
+
+        problem = ("are duplicated or empty" if len(names) == n_channels
+                   else f"are {len(names)} for {n_channels} channels")
+        warnings.warn(f"{path}: the channel names in its metadata {names_text(names)} {problem}; reading them as "
+                      "ch0, ch1, ...; give --channel-names", InputWarning, stacklevel=4)
+    return _default_channel_names(n_channels)
+
+
 def _apply_overrides(image: Image, channel_names: Sequence[str] | None) -> Image:
     if channel_names is None:
         return image
@@ -154,7 +178,7 @@ def _apply_overrides(image: Image, channel_names: Sequence[str] | None) -> Image
             f"{image.n_channels} channels; give exactly one name per channel"
         )
     if len(set(names)) != len(names) or any(not n for n in names):
-        raise InputError(f"{image.name}: --channel-names must be unique and non-empty; got {list(names)}")
+        raise InputError(f"{image.name}: --channel-names must be unique and non-empty; got {names_text(names)}")
     return replace(image, channel_names=names)
 
 
@@ -276,7 +300,8 @@ def _tiff_axes(tif, series, axes_override: str | None, path: Path) -> str:
                 f"has {len(shape)} dimensions {tuple(shape)}; give one letter per dimension"
             )
         return axes_override
-    if tif.is_ome or tif.is_imagej:
+    if tif.is_ome or tif.is_imagej or series.axes.endswith("S"):
+        # Samples per pixel (RGB) are channels: an RGB file is 3 channels, not 384 rows of them.
         axes = series.axes.replace("S", "C") if "C" not in series.axes else series.axes
         if set(axes) <= set(CANONICAL_AXES) and len(set(axes)) == len(axes):
             return axes
@@ -366,6 +391,11 @@ def tiff_failure(exc: Exception, path) -> InputError:
     """The one-line InputError for a TIFF whose pixels cannot be decoded: the codec is not
     installed (say what to install), or the data are damaged (say so)."""
     text = _short(exc)
+    if isinstance(exc, MemoryError):
+        return InputError(f"{path}: too large to read into this machine's memory; crop it, or read it in parts")
+    if text.startswith("failed to read "):
+        return InputError(f"{path}: image data end early (a file still being written, or truncated; {text}); "
+                          "wait until it is complete, or copy it again")
     if isinstance(exc, ImportError) or "imagecodecs" in text:
         return InputError(f"{path}: its pixels are compressed with a method this installation cannot decode "
                           f"({text}); install the imagecodecs package (pip install imagecodecs)")
@@ -399,9 +429,13 @@ def _check_codec(tif, series, path: Path) -> None:
 def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
     ome = _ome_channel_names_and_sizes(tif.ome_metadata) if tif.is_ome else []
     images = []
+    incomplete = ("holds no complete image (a file still being written, or truncated); wait until it is "
+                  "complete, or copy it again")
     if not tif.series:
-        raise InputError(f"{path}: the TIFF holds no image; check the file")
+        raise InputError(f"{path}: {incomplete}")
     for index, series in enumerate(tif.series):
+        if len(series.shape) < 2:
+            raise InputError(f"{path}: series {index} {incomplete}")
         n_pixels = int(np.prod(series.shape, dtype=np.float64))
         if n_pixels == 0 or n_pixels > MAX_PIXELS:
             raise InputError(f"{path}: series {index} declares an impossible shape {tuple(series.shape)}; check the file")
@@ -423,8 +457,7 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
         data, canonical = to_canonical(data, axes)
         n_channels = data.shape[canonical.index("C")]
         names, sizes = ome[index] if index < len(ome) else ([], {})
-        if len(names) != n_channels or len(set(names)) != len(names) or not all(names):
-            names = _default_channel_names(n_channels)
+        names = _usable_names(names, n_channels, path)
         images.append(Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
                             source=str(path), series=index))
     return images
@@ -493,13 +526,14 @@ def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: 
                 if letter in "XYZ":
                     sizes[letter] = float(value)
     _check_pixel_type(array.dtype, path)
+    if array.nchunks > 0 and array.nchunks_initialized == 0:
+        raise InputError(f"{path}: the OME-Zarr array holds no data at all (every chunk is missing); the copy is "
+                         "incomplete, copy the folder again")
     data = da.from_zarr(array) if lazy else np.asarray(array[...])
     data, canonical = to_canonical(data, axes)
     n_channels = data.shape[canonical.index("C")]
     channels = attrs.get("omero", {}).get("channels", [])
-    names = [str(ch.get("label", "")) for ch in channels]
-    if len(names) != n_channels or len(set(names)) != len(names) or not all(names):
-        names = _default_channel_names(n_channels)
+    names = _usable_names([str(ch.get("label", "")) for ch in channels], n_channels, path)
     return Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
                  source=str(path), series=index)
 
@@ -690,14 +724,25 @@ def read_provenance(path) -> dict | None:
     return None
 
 
+def ome_zarr_writer():
+    """The ome_zarr.writer module, imported without the deprecation warning its import emits
+    (a default argument built from a deprecated class), which users cannot act on."""
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        from ome_zarr import writer
+    return writer
+
+
 def write_ome_zarr(path, image: Image, *, provenance: dict | None = None, chunks=None) -> Path:
     """Write `image` as an OME-Zarr (NGFF) folder atomically, one resolution level.
 
     Dask arrays are written block by block (in parallel, by dask).
     """
     import zarr
-    from ome_zarr.writer import write_image
 
+    write_image = ome_zarr_writer().write_image
     path = Path(path)
     axes = [{"name": a.lower(), "type": {"T": "time", "C": "channel"}.get(a, "space")} for a in image.axes]
     scale = {a.lower(): float(image.pixel_size.get(a, 1.0)) for a in image.axes}
