@@ -480,3 +480,52 @@ def test_glob_rerun_into_the_input_folder_skips_earlier_outputs(tmp_path, demo, 
     assert code == 0, err
     manifest = json.loads((tmp_path / "unmix-manifest.json").read_text())
     assert list(manifest["outputs"]) == ["sample.unmixed.ome.tif"]
+
+
+@pytest.mark.parametrize("residual", [False, True])
+def test_planes_larger_than_the_memory_budget_are_cut_into_strips(tmp_path, demo_matrix, capsys, residual):
+    # 16 MiB budget, planes of 3 x 600 x 1000 pixels: blocks of strips, a tiled output, the same
+    # values as the whole plane unmixed at once (numpy reference of the solver on the full array).
+    from unmix.engine.batch import ApplySettings, _rows_per_block
+    from unmix.io.images import read_image
+
+    rng = np.random.default_rng(11)
+    data = rng.integers(90, 3000, size=(2, 3, 600, 1000)).astype(np.uint16)
+    data[1, 0, :30, :40] = 4095  # saturated corner, 0.1 % of the pixels (above the 0.01 % rule)
+    path = tmp_path / "wide.ome.tif"
+    tifffile.imwrite(path, data, ome=True, photometric="minisblack",
+                     metadata={"axes": "ZCYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    extra = ["--residual"] if residual else []
+    code, _, err = _run(["apply", "--matrix", demo_matrix, path, "-o", tmp_path / "out", "--memory", "16M",
+                         "--quiet", *extra], capsys)
+    assert code == 0, err
+    image = read_image(path, lazy=True)
+    assert _rows_per_block(image, ApplySettings(memory=16 << 20, residual=residual), 3) < 600
+    matrix = load_matrix(demo_matrix)
+    unmixer = Unmixer(matrix.matrix)
+    out = read_image(tmp_path / "out" / "wide.unmixed.ome.tif")
+    with tifffile.TiffFile(tmp_path / "out" / "wide.unmixed.ome.tif") as tif:
+        assert tif.pages[0].is_tiled
+    for z in range(2):
+        np.testing.assert_array_equal(out.data[:, z], unmixer.unmix(data[z], matrix.background))
+    mask = read_image(tmp_path / "out" / "wide.saturation.ome.tif").data
+    assert mask.shape == (1, 2, 600, 1000) and mask.sum() == 1200 and mask[0, 1, :30, :40].all()
+    if residual:
+        misfit = read_image(tmp_path / "out" / "wide.residual.ome.tif").data
+        np.testing.assert_allclose(misfit[0, 1], unmixer.residual(data[1], out.data[:, 1], matrix.background),
+                                   rtol=1e-6)
+
+
+def test_a_huge_plane_is_planned_within_the_budget():
+    # 3 x 100000^2 uint16 (60 GB): strips whose pixels in flight stay within the default budget.
+    import dask.array as da
+
+    from unmix.engine.batch import _IN_FLIGHT, ApplySettings, _blocks_per_batch, _bytes_per_pixel, _rows_per_block
+    from unmix.io.images import Image
+
+    image = Image(da.zeros((3, 100_000, 100_000), np.uint16, chunks=(1, 1000, 100_000)), "CYX", ("a", "b", "c"))
+    settings = ApplySettings()
+    rows = _rows_per_block(image, settings, 3)
+    batch = _blocks_per_batch(image, rows, 3, settings)
+    in_flight = _IN_FLIGHT * batch * rows * 100_000 * _bytes_per_pixel(3, 3, 2, settings)
+    assert rows % 16 == 0 and 16 <= rows < 100_000 and in_flight <= settings.memory

@@ -1,5 +1,6 @@
-"""Large fuzzing budget: mutated matrix, description, spectrum and TIFF files fed to every reader
-in-process (default 10,000 examples each) and to the command line in subprocesses (default 300).
+"""Large fuzzing budget: mutated matrix, description, spectrum and TIFF files, and coloc results
+given to `report`, fed to every reader in-process (default 10,000 examples each; a coloc file is
+loaded and built into a report) and to the command line in subprocesses (default 300).
 
 Passes when no reader raises anything but InputError and no command exits with a code other than
 0 or 2 or prints a traceback. Prints the counts.
@@ -45,6 +46,26 @@ def mutated(original: bytes, rng: random.Random) -> bytes:
     return data
 
 
+def coloc_seed(folder: Path, matrix: Path) -> Path:
+    """A coloc results file as `unmix coloc --json` writes it, from the shipped demo sample."""
+    from unmix.cli import main as cli
+    from unmix.demo import demo_inputs
+
+    path = folder / "c.json"
+    code = cli(["coloc", str(demo_inputs()["sample"]), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin",
+                "--labels", "Fernlight,Emberin", "--rounds", "19", "--json", str(path), "--quiet"])
+    assert code == 0
+    return path
+
+
+def read_coloc(matrix: Path, path: Path):
+    """What `report --coloc` does with the file, short of writing the page."""
+    from unmix.matrix import load_matrix
+    from unmix.report.html import build_report, load_coloc_results
+
+    return build_report(load_matrix(matrix), coloc_records=load_coloc_results(path))
+
+
 def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--examples", type=int, default=10_000)
@@ -55,6 +76,7 @@ def main():
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         seeds = _seed_files(folder)
+        seeds["coloc"] = coloc_seed(folder, seeds["matrix"])
         originals = {kind: Path(path).read_bytes() for kind, path in seeds.items()}
         for kind, path in seeds.items():
             target = folder / f"fuzz_{Path(path).name}"
@@ -62,7 +84,10 @@ def main():
             for _ in range(args.examples):
                 target.write_bytes(mutated(originals[kind], rng))
                 try:
-                    read_with(kind, target)
+                    if kind == "coloc":
+                        read_coloc(seeds["matrix"], target)
+                    else:
+                        read_with(kind, target)
                     counts["accepted"] += 1
                 except InputError:
                     counts["refused"] += 1
@@ -78,6 +103,8 @@ def main():
             "description": lambda p: ["predict", "--config", str(p), "-o", str(folder / "p.json")],
             "image": lambda p: ["apply", "--matrix", str(seeds["matrix"]), str(p), "-o", str(folder / "out"),
                                 "--overwrite"],
+            "coloc": lambda p: ["report", "--matrix", str(seeds["matrix"]), "--coloc", str(p), "-o",
+                                str(folder / "r.html")],
         }
         codes = {"0": 0, "2": 0, "other": 0, "traceback": 0}
         for run in range(args.cli_runs):

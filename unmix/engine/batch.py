@@ -363,25 +363,30 @@ def _bytes_per_pixel(n_channels: int, n_labels: int, itemsize: int, settings: Ap
     return held
 
 
+# Copies of a batch alive at once: the one computing, the one being written, and the writer's
+# own copies (converted, padded tiles); measured with tests/benchmarks/bench_memory.py.
+_IN_FLIGHT = 3
+
+
 def _rows_per_block(image: Image, settings: ApplySettings, n_labels: int | None = None) -> int:
-    """Rows of a block: the whole plane when two batches of one block fit in the memory budget,
-    else strips (a multiple of 16 rows, for tiled output)."""
+    """Rows of a block: the whole plane when a block fits the memory budget with room for the
+    batches in flight, else strips (a multiple of 16 rows, for tiled output)."""
     n_y, n_x = image.data.shape[-2:]
     per_row = _bytes_per_pixel(image.n_channels, n_labels or image.n_channels, np.dtype(image.data.dtype).itemsize,
                                settings) * n_x
-    rows = settings.memory // (2 * per_row)
+    rows = settings.memory // (_IN_FLIGHT * per_row)
     if rows >= n_y:
         return int(n_y)
     return int(max(16, rows // 16 * 16))
 
 
 def _blocks_per_batch(image: Image, rows: int, n_labels: int, settings: ApplySettings) -> int:
-    """Blocks computed together: two batches (one computing, one being written) within the budget."""
+    """Blocks computed together: the batches in flight within the budget."""
     if settings.batch_blocks is not None:
         return settings.batch_blocks
     per_block = _bytes_per_pixel(image.n_channels, n_labels, np.dtype(image.data.dtype).itemsize,
                                  settings) * rows * image.data.shape[-1]
-    return int(max(1, min(64, settings.memory // (2 * per_block))))
+    return int(max(1, min(64, settings.memory // (_IN_FLIGHT * per_block))))
 
 
 def _block_keys(image: Image, rows: int):
