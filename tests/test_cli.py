@@ -462,3 +462,22 @@ def test_compare_writes_nothing_when_a_figure_fails(tmp_path, monkeypatch, capsy
     monkeypatch.setattr(plots, "comparison_figure", broken)
     assert main(["compare", str(measured), str(predicted), "-o", str(tmp_path / "cmp")]) == 1
     assert not (tmp_path / "cmp").exists() or not list((tmp_path / "cmp").iterdir())
+
+
+def test_coloc_histograms_with_long_and_mathematical_label_names(tmp_path, demo, capsys):
+    # 5000-character names and names with "$": histogram files within the 255-byte limit, figures
+    # drawn, the report built from the results.
+    labels = ("C" * 5000, "F$x^$", "E" * 5000 + "2")
+    values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
+    matrix = BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"), labels=labels,
+                                primary=dict(zip(labels, ("blue450", "green525", "orange600"))), matrix=values,
+                                ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.full(3, 100.0),
+                                background_source="dark", saturation=np.full(3, 4095.0)).save(tmp_path / "long.json")
+    assert main(["coloc", str(demo["sample"]), "--matrix", str(matrix), "--labels", f"{labels[0]},{labels[1]}",
+                 "--labels", f"{labels[1]},{labels[2]}", "--rounds", "19", "--histograms", str(tmp_path / "h"),
+                 "--json", str(tmp_path / "c.json"), "--quiet"]) == 0
+    names = [p.name for p in (tmp_path / "h").iterdir()]
+    assert len(names) == 2 and all(len(name) <= 255 for name in names)
+    assert main(["report", "--matrix", str(matrix), "--coloc", str(tmp_path / "c.json"), "-o",
+                 str(tmp_path / "r.html"), "--quiet"]) == 0
+    assert capsys.readouterr().err == ""

@@ -277,3 +277,13 @@ def test_ome_zarr_writer_emits_no_deprecation_warning(tmp_path, stack):
             "('a', 'b', 'c')))")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert done.returncode == 0 and done.stderr == "", done.stderr
+
+
+def test_boolean_masks_are_read_as_masks_only(tmp_path):
+    # A boolean mask (as scikit-image and numpy write them) is a valid mask, not a valid image.
+    mask = np.zeros((24, 32), bool)
+    mask[4:10, 5:20] = True
+    tifffile.imwrite(tmp_path / "mask.tif", mask)
+    np.testing.assert_array_equal(read_image(tmp_path / "mask.tif", mask=True).data[0], mask)
+    with pytest.raises(InputError, match="bool"):
+        read_image(tmp_path / "mask.tif")

@@ -93,6 +93,9 @@ def test_apply_killed_at_twenty_moments_then_rerun(tmp_path):
         subprocess.run(command + ["-o", str(out)], check=True)
         assert not list(out.glob(".*.partial"))
         _same_outputs(tmp_path / "clean", out, names)
+        # No entry lost, even to a kill between the last rename and the manifest update.
+        manifest = json.loads((out / "unmix-manifest.json").read_text())
+        assert sorted(manifest["outputs"]) == [f"s{f}.unmixed.ome.tif" for f in range(3)]
     assert fingerprint(inputs + [str(matrix)]) == before  # inputs never modified
 
 

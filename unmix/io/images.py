@@ -188,7 +188,7 @@ def is_zarr_path(path: Path) -> bool:
 
 
 def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
-                lazy: bool = False, _open_files: list | None = None) -> list[Image]:
+                lazy: bool = False, mask: bool = False, _open_files: list | None = None) -> list[Image]:
     """Read every series (position) of a TIFF, OME-TIFF or OME-Zarr file.
 
     Parameters
@@ -202,6 +202,8 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
         Overrides the channel names of the metadata.
     lazy : bool
         Return dask arrays read on demand instead of numpy arrays.
+    mask : bool
+        The image is a mask or a label image: boolean pixels are accepted too.
 
     Returns
     -------
@@ -226,13 +228,15 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
         raise InputError(f"{path}: is a folder but not an OME-Zarr image; give a TIFF file or an OME-Zarr folder")
     else:
         images = _read_tiff(path, axes, lazy, _open_files)
+    for image in images:
+        _check_pixel_type(image.data.dtype, path, mask)
     return [_apply_overrides(im, channel_names) for im in images]
 
 
 def read_image(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
-               lazy: bool = False, series: int = 0) -> Image:
+               lazy: bool = False, mask: bool = False, series: int = 0) -> Image:
     """Read one series of an image file; see :func:`read_images`."""
-    images = read_images(path, axes=axes, channel_names=channel_names, lazy=lazy)
+    images = read_images(path, axes=axes, channel_names=channel_names, lazy=lazy, mask=mask)
     if not 0 <= series < len(images):
         raise InputError(f"{path}: has {len(images)} series; series {series} does not exist")
     return images[series]
@@ -362,10 +366,11 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: li
     return images
 
 
-def _check_pixel_type(dtype, path: Path) -> None:
-    """Integer and floating-point pixels are accepted (the contract); anything else is refused."""
+def _check_pixel_type(dtype, path: Path, mask: bool = False) -> None:
+    """Integer and floating-point pixels are accepted (the contract), and booleans in a `mask`;
+    anything else is refused."""
     dtype = np.dtype(dtype)
-    if dtype.kind not in "uif":
+    if dtype.kind not in ("uifb" if mask else "uif"):
         raise InputError(f"{path}: pixel type {dtype} is not supported; convert the image to integer or "
                          "floating-point pixels")
 
@@ -453,7 +458,6 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
             data = series.asarray()
             if data.size != n_pixels:
                 raise InputError(f"{path}: truncated image data in series {index}; check the file")
-        _check_pixel_type(data.dtype, path)
         data, canonical = to_canonical(data, axes)
         n_channels = data.shape[canonical.index("C")]
         names, sizes = ome[index] if index < len(ome) else ([], {})
@@ -525,7 +529,7 @@ def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: 
             for letter, value in zip(axes, transform["scale"]):
                 if letter in "XYZ":
                     sizes[letter] = float(value)
-    _check_pixel_type(array.dtype, path)
+    _check_pixel_type(array.dtype, path, mask=True)  # before reading: the type must be known to numpy
     if array.nchunks > 0 and array.nchunks_initialized == 0:
         raise InputError(f"{path}: the OME-Zarr array holds no data at all (every chunk is missing); the copy is "
                          "incomplete, copy the folder again")

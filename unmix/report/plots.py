@@ -31,9 +31,13 @@ def _pyplot():
     return plt
 
 
-def plain(name) -> str:
-    """A user's name as matplotlib draws it literally: every ``$`` escaped."""
-    return str(name).replace("$", r"\$")
+def plain(name, longest: int = 60) -> str:
+    """A user's name as matplotlib draws it literally: every ``$`` escaped, and cut to `longest`
+    characters (a name of thousands would squeeze the plot to nothing)."""
+    name = str(name)
+    if len(name) > longest:
+        name = name[:longest - 3] + "..."
+    return name.replace("$", r"\$")
 
 
 def png_bytes(figure) -> bytes:
