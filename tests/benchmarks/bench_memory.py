@@ -4,7 +4,7 @@ Target: a 4 GB input (4 channels x 128 x 2048 x 2048 uint16 by default) is
 processed with peak resident memory under 1.5 GB. The input is written plane
 by plane, so making it needs little memory either.
 
-Then two checks of the memory budget (``--memory``): the peak of an 800 MB
+Then two checks of the memory budget (``--memory``): the peak of a 1.5 GiB
 stack with the machine's cores reported as 2 and as 16 (ratio near 1: the
 budget, not the core count, bounds the blocks in flight), and one plane of
 3 x 8192 x 8192 (400 MB) under ``--memory`` 32M, 128M and 512M (cut into
