@@ -160,7 +160,10 @@ def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
 def is_set_member(path, outdir) -> bool:
     """Whether `path` is named like a member of an output set in `outdir` (an output of apply)."""
     path = Path(path)
-    if path.resolve().parent != Path(outdir).resolve():
+    try:
+        if path.resolve().parent != Path(outdir).resolve():
+            return False
+    except (OSError, RuntimeError):  # a symbolic link loop: judged later, with a clear message
         return False
     name = path.name.lower()
     return any(name.endswith(f".{member.name}{suffix}") for member in OUTPUT_SET for suffix in (".ome.tif", ".ome.zarr"))
@@ -919,7 +922,8 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
         raise InputError(f"matrix: {exc}; measure or describe more channels, or fewer labels") from None
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
-    check_outside_inputs(outdir, [p for p, _ in plan] + [settings.background], "-o")
+    background_file = [] if settings.background in ("matrix", "estimate") else [settings.background]
+    check_outside_inputs(outdir, [p for p, _ in plan] + background_file, "-o")
     resolved_inputs = {Path(p).resolve() for p, _ in plan}
     for source, stem in plan:
         for name in _output_names(outdir, stem, is_zarr_path(source)).values():
