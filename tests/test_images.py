@@ -287,3 +287,17 @@ def test_boolean_masks_are_read_as_masks_only(tmp_path):
     np.testing.assert_array_equal(read_image(tmp_path / "mask.tif", mask=True).data[0], mask)
     with pytest.raises(InputError, match="bool"):
         read_image(tmp_path / "mask.tif")
+
+
+def test_an_image_larger_than_the_memory_is_called_so_before_reading(tmp_path, stack, monkeypatch):
+    # Not "damaged": a valid file this machine cannot hold (simulated with 1 KiB available).
+    import unmix.io.images as images
+
+    tifffile.imwrite(tmp_path / "big.ome.tif", stack, ome=True, metadata={"axes": "ZCYX"})
+    write_ome_zarr(tmp_path / "big.ome.zarr", Image(np.moveaxis(stack, 1, 0), "CZYX", ("a", "b", "c")))
+    monkeypatch.setattr(images, "available_memory", lambda: 1024)
+    for name in ("big.ome.tif", "big.ome.zarr"):
+        with pytest.raises(InputError, match="more than the 0.0 GiB of memory available") as info:
+            read_images(tmp_path / name)
+        assert "damaged" not in str(info.value)
+        read_images(tmp_path / name, lazy=True)  # read block by block: no limit

@@ -431,6 +431,28 @@ def _check_codec(tif, series, path: Path) -> None:
         pass
 
 
+def available_memory() -> int | None:
+    """Bytes of memory available to a new allocation (Linux MemAvailable), or None if unknown."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as handle:
+            for line in handle:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def _check_fits_in_memory(nbytes: int, path) -> None:
+    """Refuse, before reading, a whole image larger than the memory available: a valid file that
+    is too large for this machine is not a damaged one."""
+    available = available_memory()
+    if available is not None and nbytes > available:
+        raise InputError(f"{path}: {nbytes / 2**30:.1f} GiB of pixels, more than the {available / 2**30:.1f} GiB "
+                         "of memory available here; crop the image (a smaller field or fewer planes) or use a larger "
+                         "machine")
+
+
 def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
     ome = _ome_channel_names_and_sizes(tif.ome_metadata) if tif.is_ome else []
     images = []
@@ -455,6 +477,7 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
             store = series.aszarr(level=0)
             data = da.from_zarr(zarr.open(store, mode="r"))
         else:
+            _check_fits_in_memory(n_pixels * np.dtype(series.dtype).itemsize, path)
             data = series.asarray()
             if data.size != n_pixels:
                 raise InputError(f"{path}: truncated image data in series {index}; check the file")
@@ -533,6 +556,8 @@ def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: 
     if array.nchunks > 0 and array.nchunks_initialized == 0:
         raise InputError(f"{path}: the OME-Zarr array holds no data at all (every chunk is missing); the copy is "
                          "incomplete, copy the folder again")
+    if not lazy:
+        _check_fits_in_memory(int(np.prod(array.shape, dtype=np.float64)) * array.dtype.itemsize, path)
     data = da.from_zarr(array) if lazy else np.asarray(array[...])
     data, canonical = to_canonical(data, axes)
     n_channels = data.shape[canonical.index("C")]
