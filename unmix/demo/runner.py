@@ -37,10 +37,11 @@ def run_demo(outdir, out=None) -> dict:
     print(f"\nTrue coefficients inside the measured 95 % interval: {int(inside.sum())} of {inside.size}",
           file=out)
 
-    from ..engine.batch import apply_matrix
+    from ..engine.batch import ApplySettings, apply_matrix
     from ..io.images import read_image
 
-    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed")
+    # The folder is the demo's own: a rerun measures the matrix again and replaces its results.
+    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed", settings=ApplySettings(overwrite=True))
     if result.status == "failed":
         raise RuntimeError(f"demo sample failed to unmix: {result.message}")
     unmixed = read_image(result.output).data
