@@ -160,8 +160,25 @@ APPLY_BAD_INPUT = {
     "bad method": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--method", "magic"], "--method"),
     "missing background file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--background",
                                                  t / "dark.tif"], "dark.tif"),
-    "output is a file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", m], "is a file"),
+    "output is the matrix": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", m], "also an input"),
+    "output is a file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", _copy(m, t / "x.json")], "is a file"),
+    "damaged strip": (lambda t, d, m: ["--matrix", m, _corrupt_strip(t), "-o", t / "out"], "damaged image data"),
 }
+
+
+def _corrupt_strip(folder: Path) -> Path:
+    """A zlib-compressed OME-TIFF whose second strip is overwritten with garbage."""
+    rng = np.random.default_rng(7)
+    path = folder / "corrupt.ome.tif"
+    tifffile.imwrite(path, rng.integers(90, 3000, size=(3, 64, 64)).astype(np.uint16), ome=True,
+                     compression="zlib", rowsperstrip=16, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    data = bytearray(path.read_bytes())
+    with tifffile.TiffFile(path) as tif:
+        offset = tif.pages[1].dataoffsets[1]
+    data[offset:offset + 20] = b"\xff" * 20
+    path.write_bytes(bytes(data))
+    return path
 
 
 def _copy(source, target):
@@ -198,17 +215,17 @@ def test_failed_write_leaves_no_output(tmp_path, demo, demo_matrix, capsys, monk
     # Disk full, simulated: writing fails after the first plane; no file appears under a final name.
     import unmix.engine.batch as batch
 
-    real = batch._planes_writer
+    real = batch._early_writeback
 
-    def full_disk(blocks, n_labels):
-        planes = real(blocks, n_labels)
+    def full_disk(planes, handle):
+        planes = real(planes, handle)
         yield next(planes)
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(batch, "_planes_writer", full_disk)
+    monkeypatch.setattr(batch, "_early_writeback", full_disk)
     code, _, err = _run(["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path / "out"], capsys)
     assert code == 2 and "No space left" in err[-1] and "free space" in err[-1]
-    assert [p.name for p in (tmp_path / "out").iterdir()] == []
+    assert not (tmp_path / "out").exists()  # not even the folder this run would have made
 
 
 def test_several_series_are_unmixed_series_by_series(tmp_path, demo_matrix, capsys):
@@ -304,8 +321,11 @@ def test_interrupted_output_without_its_mask_is_redone(tmp_path, demo, demo_matr
     argv = ["apply", "--matrix", demo_matrix, demo["sample"], "-o", tmp_path, "--quiet"]
     assert _run(argv, capsys)[0] == 0
     (tmp_path / "sample.saturation.ome.tif").unlink()
-    stale = [tmp_path / ".sample.unmixed.ome.tif.999999999-deadbeef.partial",
-             tmp_path / ".unmix-manifest.json.999999999-deadbeef.partial"]
+    from unmix.io.atomic import machine_id
+
+    # Owned by a process of this machine that no longer runs.
+    stale = [tmp_path / f".sample.unmixed.ome.tif.999999999-{machine_id()}-abcdef.partial",
+             tmp_path / f".unmix-manifest.json.999999999-{machine_id()}-abcdef.partial"]
     for path in stale:
         path.write_bytes(b"half")
     assert _run(argv, capsys)[0] == 0
@@ -404,3 +424,108 @@ def test_ome_zarr_tasks_store_blocks_locally_and_the_client_on_a_cluster(tmp_pat
     for folder in ("local", "cluster"):
         stored = np.asarray(zarr.open_array(str(tmp_path / folder / "z.unmixed.ome.zarr" / "0"), mode="r")[...])
         np.testing.assert_array_equal(stored, expected)
+
+
+def test_pyramidal_ome_tiff_is_read_at_full_resolution(tmp_path, demo_matrix, capsys):
+    # A pyramid (sub-resolutions in SubIFDs): apply and the eager reader both take level 0.
+    from unmix.io.images import read_image
+
+    rng = np.random.default_rng(8)
+    data = rng.integers(90, 3000, size=(3, 64, 96)).astype(np.uint16)
+    path = tmp_path / "pyramid.ome.tif"
+    with tifffile.TiffWriter(path, ome=True) as writer:
+        writer.write(data, subifds=1, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+        writer.write(data[:, ::2, ::2], subfiletype=1, photometric="minisblack")
+    np.testing.assert_array_equal(read_image(path).data, data)
+    code, _, err = _run(["apply", "--matrix", demo_matrix, path, "-o", tmp_path / "out", "--quiet"], capsys)
+    assert code == 0, err
+    matrix = load_matrix(demo_matrix)
+    # numpy reference: the same solver on the full-resolution pixels read by tifffile directly
+    np.testing.assert_array_equal(read_image(tmp_path / "out" / "pyramid.unmixed.ome.tif").data,
+                                  Unmixer(matrix.matrix).unmix(tifffile.imread(path), matrix.background))
+
+
+@pytest.mark.parametrize("compression", ["lzw", "zstd"])
+def test_a_missing_codec_names_what_to_install(tmp_path, demo_matrix, compression):
+    # imagecodecs is a dependency; an installation without it must say so, in apply as in measure.
+    import subprocess
+    import sys
+
+    rng = np.random.default_rng(9)
+    path = tmp_path / f"{compression}.ome.tif"
+    tifffile.imwrite(path, rng.integers(90, 3000, size=(3, 32, 32)).astype(np.uint16), ome=True,
+                     compression=compression, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    hide = "import sys; sys.modules['imagecodecs'] = None; sys.modules['compression'] = None; "
+    for argv in (["apply", "--matrix", str(demo_matrix), str(path), "-o", str(tmp_path / "out")],
+                 ["measure", "--control", f"A={path}", "-o", str(tmp_path / "m.json")]):
+        done = subprocess.run([sys.executable, "-c", hide + "from unmix.cli.main import main; "
+                               f"sys.exit(main({argv!r}))"], capture_output=True, text=True)
+        assert done.returncode == 2, done.stderr
+        errors = [line for line in done.stderr.splitlines() if line.startswith("error:")]
+        assert len(errors) == 1 and "pip install imagecodecs" in errors[0] and path.name in errors[0], done.stderr
+        assert "damaged" not in errors[0]
+    code = subprocess.run([sys.executable, "-m", "unmix.cli", "apply", "--matrix", str(demo_matrix), str(path),
+                           "-o", str(tmp_path / "out"), "--quiet"]).returncode
+    assert code == 0  # with the codec installed
+
+
+def test_glob_rerun_into_the_input_folder_skips_earlier_outputs(tmp_path, demo, demo_matrix, capsys):
+    # Outputs written beside the inputs match the same glob on the rerun: they are not inputs.
+    _copy(demo["sample"], tmp_path / "sample.ome.tif")
+    argv = ["apply", "--matrix", demo_matrix, str(tmp_path / "*.tif"), "-o", tmp_path, "--quiet"]
+    assert _run(argv, capsys)[0] == 0
+    code, out, err = _run([*argv[:-1]], capsys)
+    assert code == 0, err
+    manifest = json.loads((tmp_path / "unmix-manifest.json").read_text())
+    assert list(manifest["outputs"]) == ["sample.unmixed.ome.tif"]
+
+
+@pytest.mark.parametrize("residual", [False, True])
+def test_planes_larger_than_the_memory_budget_are_cut_into_strips(tmp_path, demo_matrix, capsys, residual):
+    # 16 MiB budget, planes of 3 x 600 x 1000 pixels: blocks of strips, a tiled output, the same
+    # values as the whole plane unmixed at once (numpy reference of the solver on the full array).
+    from unmix.engine.batch import ApplySettings, _rows_per_block
+    from unmix.io.images import read_image
+
+    rng = np.random.default_rng(11)
+    data = rng.integers(90, 3000, size=(2, 3, 600, 1000)).astype(np.uint16)
+    data[1, 0, :30, :40] = 4095  # saturated corner, 0.1 % of the pixels (above the 0.01 % rule)
+    path = tmp_path / "wide.ome.tif"
+    tifffile.imwrite(path, data, ome=True, photometric="minisblack",
+                     metadata={"axes": "ZCYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    extra = ["--residual"] if residual else []
+    code, _, err = _run(["apply", "--matrix", demo_matrix, path, "-o", tmp_path / "out", "--memory", "16M",
+                         "--quiet", *extra], capsys)
+    assert code == 0, err
+    image = read_image(path, lazy=True)
+    assert _rows_per_block(image, ApplySettings(memory=16 << 20, residual=residual), 3) < 600
+    matrix = load_matrix(demo_matrix)
+    unmixer = Unmixer(matrix.matrix)
+    out = read_image(tmp_path / "out" / "wide.unmixed.ome.tif")
+    with tifffile.TiffFile(tmp_path / "out" / "wide.unmixed.ome.tif") as tif:
+        assert tif.pages[0].is_tiled
+    for z in range(2):
+        np.testing.assert_array_equal(out.data[:, z], unmixer.unmix(data[z], matrix.background))
+    mask = read_image(tmp_path / "out" / "wide.saturation.ome.tif").data
+    assert mask.shape == (1, 2, 600, 1000) and mask.sum() == 1200 and mask[0, 1, :30, :40].all()
+    if residual:
+        misfit = read_image(tmp_path / "out" / "wide.residual.ome.tif").data
+        np.testing.assert_allclose(misfit[0, 1], unmixer.residual(data[1], out.data[:, 1], matrix.background),
+                                   rtol=1e-6)
+
+
+def test_a_huge_plane_is_planned_within_the_budget():
+    # 3 x 100000^2 uint16 (60 GB): strips whose pixels in flight stay within the default budget.
+    import dask.array as da
+
+    from unmix.engine.batch import _IN_FLIGHT, ApplySettings, _blocks_per_batch, _bytes_per_pixel, _rows_per_block
+    from unmix.io.images import Image
+
+    image = Image(da.zeros((3, 100_000, 100_000), np.uint16, chunks=(1, 1000, 100_000)), "CYX", ("a", "b", "c"))
+    settings = ApplySettings()
+    rows = _rows_per_block(image, settings, 3)
+    batch = _blocks_per_batch(image, rows, 3, settings)
+    in_flight = _IN_FLIGHT * batch * rows * 100_000 * _bytes_per_pixel(3, 3, 2, settings)
+    assert rows % 16 == 0 and 16 <= rows < 100_000 and in_flight <= settings.memory

@@ -45,6 +45,7 @@ def files(tmp_path, demo):
     _descriptions(tmp_path)
     _coloc_files(tmp_path, cob.shape[1:])
     _odd_files(tmp_path)
+    _unsafe_files(tmp_path, cob)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
     return paths
@@ -90,6 +91,37 @@ def _odd_files(folder: Path) -> None:
     for name, change in variants.items():
         (folder / f"{name}.json").write_text(json.dumps({**good, **change}))
     (folder / "nan_matrix.json").write_text(json.dumps(good).replace('"matrix": [[1.0', '"matrix": [[NaN', 1))
+    (folder / "digits_matrix.json").write_text(json.dumps(good).replace('"background": [100.0',
+                                                                         '"background": [' + "9" * 400, 1))
+    (folder / "flags_matrix.json").write_text(json.dumps({**good, "qc": {"flags": 5}}))
+
+
+def _unsafe_files(folder: Path, pixels) -> None:
+    """Inputs that hang, loop, never end or would be written into: a FIFO, a symbolic link loop,
+    an OME-Zarr input, an output folder holding a foreign manifest, a text file too large, deeply
+    nested TOML, a needlessly fine grid, descriptions reading /dev/zero."""
+    import os
+
+    from unmix.io.images import Image, write_ome_zarr
+
+    os.mkfifo(folder / "pipe.tif")
+    os.symlink(folder / "loop_b.tif", folder / "loop_a.tif")
+    os.symlink(folder / "loop_a.tif", folder / "loop_b.tif")
+    write_ome_zarr(folder / "input.ome.zarr", Image(pixels, "CYX", ("blue450", "green525", "orange600")))
+    (folder / "foreign_manifest").mkdir()
+    (folder / "foreign_manifest" / "unmix-manifest.json").write_text('{"format": "someone-else"}')
+    (folder / "manifest_folder" / "unmix-manifest.json").mkdir(parents=True)
+    with open(folder / "huge_matrix.json", "wb") as handle:
+        handle.truncate(65 << 20)  # sparse: costs no disk
+    (folder / "nested.toml").write_text(DESCRIPTION + "deep = " + "[" * 5000 + "]" * 5000 + "\n")
+    (folder / "fine_grid.toml").write_text(DESCRIPTION.replace("version = 1\n", "version = 1\n"
+                                                               "grid = { start = 400, stop = 700, step = 1e-7 }\n", 1))
+    (folder / "zero_csv.toml").write_text(DESCRIPTION.replace('{ band = "525/50" }', '{ csv = "/dev/zero" }'))
+    (folder / "zero_include.toml").write_text(DESCRIPTION.replace("version = 1\n", 'version = 1\n'
+                                                                  'include = ["/dev/zero"]\n', 1))
+    (folder / "long_input").mkdir()
+    (folder / "long_input" / ("n" * 240 + ".tif")).write_bytes((folder / "two_channels.ome.tif").read_bytes())
+    (folder / "a_file").write_text("not a folder\n")
 
 
 def _apply(files, matrix, image="cob"):
@@ -111,9 +143,9 @@ def _coloc_files(folder: Path, shape) -> None:
                      metadata={"axes": "ZCYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
 
 
-def _coloc(files, *extra, image="cob"):
+def _coloc(files, *extra, image="cob", matrix="coloc_matrix"):
     folder = Path(files["out"]).parent
-    return ["coloc", files[image], "--matrix", folder / "coloc_matrix.json", *extra]
+    return ["coloc", files[image], "--matrix", folder / f"{matrix}.json", *extra]
 
 
 def _descriptions(folder: Path) -> None:
@@ -218,6 +250,16 @@ BAD_INPUT = {
     "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="renamed"),
                                    "renamed.ome.tif"),
     "coloc bad thresholds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--thresholds", "5"), "TA,TB"),
+    "coloc negative seed": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--seed", "-1"), "--seed -1"),
+    "coloc pixel size nan": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--pixel-um", "nan"),
+                             "--pixel-um nan"),
+    "coloc pixel size negative": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--pixel-um", "-1"),
+                                  "--pixel-um -1"),
+    "coloc min-r nan": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--min-r", "nan"), "--min-r nan"),
+    "matrix with a 400-digit number": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin",
+                                                        matrix="digits_matrix"), "digits_matrix.json"),
+    "matrix with qc.flags not a list": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin",
+                                                         matrix="flags_matrix"), "flags_matrix.json"),
     "coloc bad psf": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--psf", "1.4"), "NA,WAVELENGTH_NM"),
     "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--rounds", "5"), "--rounds"),
     "coloc json is the input": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--json", f["cob"]),
@@ -235,19 +277,75 @@ BAD_INPUT = {
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
                              "notes.tif"),
+    "fifo as an image": (lambda f: _measure(f"A={f['pipe']}", extra=["-o", f["out"]]), "not a regular file"),
+    "fifo as a matrix": (lambda f: ["apply", "--matrix", f["pipe"], f["cob"], "-o", _folder(f, "unmixed")],
+                         "not a regular file"),
+    "fifo as a description": (lambda f: ["predict", "--config", f["pipe"], "-o", f["out"]], "not a regular file"),
+    "device as a matrix": (lambda f: ["apply", "--matrix", "/dev/zero", f["cob"], "-o", _folder(f, "unmixed")],
+                           "/dev/zero"),
+    "device as a description": (lambda f: ["predict", "--config", "/dev/zero", "-o", f["out"]], "/dev/zero"),
+    "device as a spectrum": (lambda f: _predict(f, "zero_csv"), "/dev/zero"),
+    "device as an include": (lambda f: _predict(f, "zero_include"), "/dev/zero"),
+    "device as a coloc file": (lambda f: ["report", "--matrix", _folder(f, "coloc_matrix.json"), "--coloc", "/dev/zero",
+                                          "-o", _folder(f, "r.html")], "/dev/zero"),
+    "text file too large": (lambda f: ["apply", "--matrix", f["huge_matrix"], f["cob"], "-o", _folder(f, "unmixed")],
+                            "too large"),
+    "description nested too deeply": (lambda f: _predict(f, "nested"), "nested too deeply"),
+    "grid step too fine": (lambda f: _predict(f, "fine_grid"), "step"),
+    "symbolic link loop as a control": (lambda f: _measure(f"A={_folder(f, 'loop_a.tif')}", extra=["-o", f["out"]]),
+                                        "loop_a.tif"),
+    "symbolic link loop as -o": (lambda f: _measure(f"A={f['cob']}", extra=["-o", _folder(f, "loop_a.tif")]),
+                                 "loop_a.tif"),
+    "apply output is the zarr input": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["input"],
+                                                  "-o", f["input"]], "also an input"),
+    "apply output inside the zarr input": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"),
+                                                      f["input"], "-o", Path(f["input"]) / "sub"], "inside the input"),
+    "measure output inside a zarr control": (lambda f: _measure(f"A={f['input']}", extra=[
+        "-o", Path(f["input"]) / "m.json"]), "inside the input"),
+    "coloc json inside the zarr input": (lambda f: ["coloc", f["input"], "--matrix", _folder(f, "coloc_matrix.json"),
+                                                    "--labels", "Cobaltin,Emberin", "--json",
+                                                    Path(f["input"]) / "c.json"], "inside the input"),
+    "output name too long": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"),
+                                        _folder(f, "long_input/" + "n" * 240 + ".tif"), "-o", _folder(f, "unmixed")],
+                             "255"),
+    "foreign manifest": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                    _folder(f, "foreign_manifest")], "unmix-manifest.json"),
+    "manifest is a folder": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                        _folder(f, "manifest_folder")], "unmix-manifest.json"),
+    "scheduler not an address": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                            _folder(f, "unmixed"), "--scheduler", "nonsense"], "--scheduler"),
+    "memory not a size": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                     _folder(f, "unmixed"), "--memory", "lots"], "--memory"),
+    "memory too small": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+                                    _folder(f, "unmixed"), "--memory", "1K"], "--memory"),
+    "bootstrap beyond bound": (lambda f: _measure(f"A={f['cob']}", extra=["--bootstrap", "100000000", "-o",
+                                                                         f["out"]]), "--bootstrap"),
+    "negative seed": (lambda f: _measure(f"A={f['cob']}", extra=["--seed", "-1", "-o", f["out"]]), "--seed"),
+    "saturated percent out of range": (lambda f: _measure(f"A={f['cob']}", extra=["--max-saturated-percent", "nan",
+                                                                                 "-o", f["out"]]),
+                                       "--max-saturated-percent"),
+    "compare negative tolerance": (lambda f: [*_compare_pair(f, same=True), "--tolerance", "-1"], "--tolerance"),
+    "compare tolerance nan": (lambda f: [*_compare_pair(f, same=True), "--tolerance", "nan"], "--tolerance"),
+    "compare output below a file": (lambda f: [*_compare_pair(f, same=True)[:-1], _folder(f, "a_file/sub")],
+                                    "a_file"),
+    "demo output is a file": (lambda f: ["demo", "-o", _folder(f, "a_file")], "a_file"),
 }
+
+
+def _folder(files, name):
+    return Path(files["out"]).parent / name
 
 
 def _predict(files, variant):
     return ["predict", "--config", Path(files["out"]).parent / f"{variant}.toml", "-o", files["out"]]
 
 
-def _compare_pair(files, labels=False):
+def _compare_pair(files, labels=False, same=False):
     folder = Path(files["out"]).parent
     measured = BleedThroughMatrix(kind="measured", channels=("g", "o"), labels=("A",), primary={"A": "g"},
                                   matrix=np.array([[1.0], [0.2]]), ci95_low=np.array([[1.0], [0.1]]),
                                   ci95_high=np.array([[1.0], [0.3]]), background=np.zeros(2), background_source="dark")
-    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels else ("g", "r"),
+    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels or same else ("g", "r"),
                                    labels=("Z",) if labels else ("A",), primary={"Z" if labels else "A": "g"},
                                    matrix=np.array([[1.0], [0.2]]))
     measured.save(folder / "measured.json")
@@ -259,9 +357,10 @@ def _compare_pair(files, labels=False):
 def test_bad_input_one_line_exit_2_nothing_written(case, files, capsys):
     build, expected = BAD_INPUT[case]
     argv = [str(a) for a in build(files)]
-    inputs = [p for p in files.values() if Path(p).is_file()]
+    folder = Path(files["out"]).parent
+    inputs = [p for p in folder.rglob("*") if p.is_file() and not p.is_symlink() and p.name != "pipe.tif"]
     before = fingerprint(inputs)
-    listing = sorted(p.name for p in Path(files["out"]).parent.iterdir())
+    listing = sorted(str(p.relative_to(folder)) for p in folder.rglob("*"))
     assert main(argv) == 2
     err = capsys.readouterr().err.strip().splitlines()
     errors = [line for line in err if not line.startswith("warning:")]
@@ -269,7 +368,7 @@ def test_bad_input_one_line_exit_2_nothing_written(case, files, capsys):
     assert errors[0].startswith("error: ") and expected in errors[0], errors[0]
     assert "Traceback" not in "\n".join(err)
     assert fingerprint(inputs) == before  # inputs untouched
-    assert sorted(p.name for p in Path(files["out"]).parent.iterdir()) == listing  # nothing written
+    assert sorted(str(p.relative_to(folder)) for p in folder.rglob("*")) == listing  # nothing written
 
 
 def test_measure_success_writes_matrix_and_csv(files, capsys, tmp_path):
@@ -337,3 +436,104 @@ def test_predict_compare_and_plan_from_the_command_line(tmp_path, capsys):
     capsys.readouterr()
     assert main(["plan", str(description)]) == 0
     assert "sequential" in capsys.readouterr().out
+
+
+def _maths_matrices(folder: Path) -> tuple[Path, Path]:
+    """A measured and a predicted matrix whose label and channel names matplotlib would read as
+    mathematics (invented names)."""
+    labels, channels = ("$x^$", "B$"), ("g$_", "$o")
+    measured = BleedThroughMatrix(kind="measured", channels=channels, labels=labels,
+                                  primary={labels[0]: channels[0], labels[1]: channels[1]},
+                                  matrix=np.array([[1.0, 0.1], [0.2, 1.0]]),
+                                  ci95_low=np.array([[1.0, 0.05], [0.1, 1.0]]),
+                                  ci95_high=np.array([[1.0, 0.15], [0.3, 1.0]]), background=np.zeros(2),
+                                  background_source="dark")
+    predicted = BleedThroughMatrix(kind="predicted", channels=channels, labels=labels,
+                                   primary={labels[0]: channels[0], labels[1]: channels[1]},
+                                   matrix=np.array([[1.0, 0.4], [0.21, 1.0]]))
+    return measured.save(folder / "maths_measured.json"), predicted.save(folder / "maths_predicted.json")
+
+
+def test_names_that_look_like_mathematics_are_drawn_as_text(tmp_path, demo, capsys):
+    measured, predicted = _maths_matrices(tmp_path)
+    assert main(["compare", str(measured), str(predicted), "-o", str(tmp_path / "cmp"), "--quiet"]) == 0
+    assert sorted(p.name for p in (tmp_path / "cmp").iterdir()) == ["compare-matrices.png", "compare-scatter.png",
+                                                                    "compare.csv", "compare.json"]
+    assert main(["report", "--matrix", str(measured), "--predicted", str(predicted), "-o", str(tmp_path / "r.html"),
+                 "--quiet"]) == 0
+    from unmix.report.plots import plain
+
+    assert plain("$x^$") == r"\$x^\$"  # matplotlib's escape for a literal dollar sign
+
+
+def test_compare_writes_nothing_when_a_figure_fails(tmp_path, monkeypatch, capsys):
+    # Every figure is drawn before any file is written: a failing figure leaves no table behind.
+    import unmix.report.plots as plots
+
+    measured, predicted = _maths_matrices(tmp_path)
+
+    def broken(comparison):
+        raise ValueError("figure failed")
+
+    monkeypatch.setattr(plots, "comparison_figure", broken)
+    assert main(["compare", str(measured), str(predicted), "-o", str(tmp_path / "cmp")]) == 1
+    assert not (tmp_path / "cmp").exists() or not list((tmp_path / "cmp").iterdir())
+
+
+def test_coloc_histograms_with_long_and_mathematical_label_names(tmp_path, demo, capsys):
+    # 5000-character names and names with "$": histogram files within the 255-byte limit, figures
+    # drawn, the report built from the results.
+    labels = ("C" * 5000, "F$x^$", "E" * 5000 + "2")
+    values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
+    matrix = BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"), labels=labels,
+                                primary=dict(zip(labels, ("blue450", "green525", "orange600"))), matrix=values,
+                                ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.full(3, 100.0),
+                                background_source="dark", saturation=np.full(3, 4095.0)).save(tmp_path / "long.json")
+    assert main(["coloc", str(demo["sample"]), "--matrix", str(matrix), "--labels", f"{labels[0]},{labels[1]}",
+                 "--labels", f"{labels[1]},{labels[2]}", "--rounds", "19", "--histograms", str(tmp_path / "h"),
+                 "--json", str(tmp_path / "c.json"), "--quiet"]) == 0
+    names = [p.name for p in (tmp_path / "h").iterdir()]
+    assert len(names) == 2 and all(len(name) <= 255 for name in names)
+    assert "no noise model" in capsys.readouterr().err  # this matrix has none: said once, nothing else
+    assert main(["report", "--matrix", str(matrix), "--coloc", str(tmp_path / "c.json"), "-o",
+                 str(tmp_path / "r.html"), "--quiet"]) == 0
+    assert capsys.readouterr().err == ""
+
+
+@pytest.mark.parametrize("change, words", [
+    (lambda r: r["before"].update(thresholds=["a", "b"]), "before.thresholds"),
+    (lambda r: r["after"].update(thresholds=[1.0]), "after.thresholds"),
+    (lambda r: r.update(before={}), "'before'"),
+    (lambda r: r.update(pair=[]), "'pair'"),
+    (lambda r: r.update(verdict=["persists"]), "unknown verdict"),
+    (lambda r: r["after"].update(pearson="high"), "after.pearson"),
+    (lambda r: r.update(inflation=10**400), "'inflation'"),
+    (lambda r: r.update(object=1.5), "'object'"),
+    (lambda r: r.update(plane_profile=[{"plane": "top"}]), "plane_profile"),
+])
+def test_report_refuses_malformed_coloc_results(tmp_path, capsys, change, words):
+    # Hand-edited or damaged coloc files: one line naming the file and the key, exit 2, nothing written.
+    from unmix.coloc.verdict import analyse_pair
+    from pair_scenes import measured_matrix, pair_scene
+
+    scene = pair_scene(3, shape=(48, 48))
+    matrix = measured_matrix(scene, 3)
+    record = analyse_pair(scene.raw, matrix, ("A", "B"), rounds=19).to_dict()
+    change(record)
+    (tmp_path / "c.json").write_text(json.dumps(record))
+    matrix.save(tmp_path / "m.json")
+    assert main(["report", "--matrix", str(tmp_path / "m.json"), "--coloc", str(tmp_path / "c.json"), "-o",
+                 str(tmp_path / "r.html")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "c.json" in err[0] and words in err[0]
+    assert not (tmp_path / "r.html").exists()
+
+
+def test_report_refuses_deeply_nested_coloc_json(tmp_path, capsys):
+    from pair_scenes import measured_matrix, pair_scene
+
+    measured_matrix(pair_scene(3, shape=(48, 48)), 3).save(tmp_path / "m.json")
+    (tmp_path / "c.json").write_text("[" * 100_000 + "]" * 100_000)
+    assert main(["report", "--matrix", str(tmp_path / "m.json"), "--coloc", str(tmp_path / "c.json"), "-o",
+                 str(tmp_path / "r.html")]) == 2
+    assert "c.json" in capsys.readouterr().err

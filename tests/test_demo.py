@@ -69,6 +69,8 @@ def test_run_demo_writes_results(tmp_path, capsys):
     assert result["coloc"][("Fernlight", "Emberin")] == "bleed-through-only"
     assert result["coloc"][("Cobaltin", "Emberin")] == "persists"
     assert result["report"].exists()
+    # Run again into the same folder: the demo replaces its own results.
+    assert run_demo(tmp_path / "out")["unmixed"].exists()
 
 
 @pytest.mark.slow

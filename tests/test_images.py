@@ -194,3 +194,110 @@ def test_read_block_sees_a_replaced_file(tmp_path):
     tifffile.imwrite(path, np.full((2, 8, 8), 7, np.uint16))
     assert read_block(path, 0, key, channels=["ch0", "ch1"]).max() == 7
     close_block_sources()
+
+
+def _being_written(path, planes: int = 6) -> None:
+    """A copy of a TIFF taken while tifffile is still writing it (its pages not yet complete)."""
+    import shutil
+    import threading
+
+    pause, copied = threading.Event(), threading.Event()
+
+    def data():
+        for index in range(planes):
+            if index == planes // 2:
+                copied.wait()
+            yield np.zeros((32, 32), np.uint16)
+
+    writing = path.with_name("writing-" + path.name)
+
+    def write():
+        with tifffile.TiffWriter(writing) as writer:
+            writer.write(data(), shape=(planes, 32, 32), dtype=np.uint16, photometric="minisblack")
+
+    thread = threading.Thread(target=write)
+    thread.start()
+    while not writing.exists() or writing.stat().st_size < 8:
+        pause.wait(0.01)
+    pause.wait(0.2)
+    shutil.copy(writing, path)
+    copied.set()
+    thread.join()
+
+
+def test_a_tiff_still_being_written_is_called_so(tmp_path):
+    _being_written(tmp_path / "acquiring.tif")
+    with pytest.raises(InputError, match="still being written") as info:
+        read_images(tmp_path / "acquiring.tif")
+    assert "--axes" not in str(info.value)
+
+
+def test_rgb_samples_are_three_channels(tmp_path):
+    # tifffile reports the axes of an RGB page as YXS: the samples are the channels.
+    tifffile.imwrite(tmp_path / "rgb.tif", np.zeros((384, 256, 3), np.uint8), photometric="rgb")
+    image = read_image(tmp_path / "rgb.tif")
+    assert image.axes == "CYX" and image.data.shape == (3, 384, 256)
+
+
+def test_unusable_channel_names_are_a_warning_naming_them(tmp_path):
+    from unmix.errors import InputWarning
+
+    tifffile.imwrite(tmp_path / "dup.ome.tif", np.zeros((3, 8, 8), np.uint16), ome=True,
+                     metadata={"axes": "CYX", "Channel": {"Name": ["a", "a", ""]}})
+    with pytest.warns(InputWarning, match=r"\['a', 'a', ''\] are duplicated or empty"):
+        image = read_image(tmp_path / "dup.ome.tif")
+    assert image.channel_names == ("ch0", "ch1", "ch2")
+
+
+def test_long_name_lists_are_cut_in_messages():
+    from unmix.io.images import names_text
+
+    assert names_text([f"ch{i}" for i in range(384)]) == (
+        "['ch0', 'ch1', 'ch2', 'ch3', 'ch4', 'ch5', 'ch6', 'ch7' and 376 more]")
+
+
+def test_zarr_store_with_every_chunk_missing_is_refused(tmp_path, stack):
+    import shutil
+
+    write_ome_zarr(tmp_path / "s.ome.zarr", Image(np.moveaxis(stack, 1, 0), "CZYX", ("a", "b", "c")))
+    for chunks in [p for p in (tmp_path / "s.ome.zarr").rglob("c") if p.is_dir()]:
+        shutil.rmtree(chunks)
+    for lazy in (False, True):
+        with pytest.raises(InputError, match="every chunk is missing"):
+            read_images(tmp_path / "s.ome.zarr", lazy=lazy)
+
+
+def test_ome_zarr_writer_emits_no_deprecation_warning(tmp_path, stack):
+    import subprocess
+    import sys
+
+    code = ("import numpy as np, warnings; warnings.simplefilter('default');"
+            "from unmix.io.images import Image, write_ome_zarr;"
+            f"write_ome_zarr({str(tmp_path / 'w.ome.zarr')!r}, Image(np.zeros((3, 8, 8), np.uint16), 'CYX', "
+            "('a', 'b', 'c')))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert done.returncode == 0 and done.stderr == "", done.stderr
+
+
+def test_boolean_masks_are_read_as_masks_only(tmp_path):
+    # A boolean mask (as scikit-image and numpy write them) is a valid mask, not a valid image.
+    mask = np.zeros((24, 32), bool)
+    mask[4:10, 5:20] = True
+    tifffile.imwrite(tmp_path / "mask.tif", mask)
+    np.testing.assert_array_equal(read_image(tmp_path / "mask.tif", mask=True).data[0], mask)
+    with pytest.raises(InputError, match="bool"):
+        read_image(tmp_path / "mask.tif")
+
+
+def test_an_image_larger_than_the_memory_is_called_so_before_reading(tmp_path, stack, monkeypatch):
+    # Not "damaged": a valid file this machine cannot hold (simulated with 1 KiB available).
+    import unmix.io.images as images
+
+    tifffile.imwrite(tmp_path / "big.ome.tif", stack, ome=True, metadata={"axes": "ZCYX"})
+    write_ome_zarr(tmp_path / "big.ome.zarr", Image(np.moveaxis(stack, 1, 0), "CZYX", ("a", "b", "c")))
+    monkeypatch.setattr(images, "available_memory", lambda: 1024)
+    for name in ("big.ome.tif", "big.ome.zarr"):
+        with pytest.raises(InputError, match="more than the 0.0 GiB of memory available") as info:
+            read_images(tmp_path / name)
+        assert "damaged" not in str(info.value)
+        read_images(tmp_path / name, lazy=True)  # read block by block: no limit

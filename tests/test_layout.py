@@ -16,7 +16,7 @@ PLUGIN = ROOT / "plugins" / "unmix_napari"
 
 # Rank of each stage: a module may import only stages of lower or equal rank, and a sub-package
 # never imports a sibling of the same rank (measure and optics stand side by side).
-SHARED = {"errors", "_version", "_lazy", "threads"}  # used by all; import nothing of ours but each other
+SHARED = {"errors", "_version", "_lazy", "_numba_cache", "threads"}  # used by all; import nothing of ours but each other
 RANK = {"io": 1, "matrix": 2, "measure": 3, "optics": 3, "engine": 4, "coloc": 5, "report": 6, "demo": 7,
         "cli": 8, "unmix_napari": 8}
 # Only these may import the report stage.

@@ -14,8 +14,13 @@ line starts fast and pays only for the libraries a subcommand uses::
     matrix.save("matrix.json")
 """
 
+from pathlib import Path as _Path
+
 from ._lazy import lazy_exports
+from ._numba_cache import configure as _configure_numba_cache
 from ._version import __version__
+
+_configure_numba_cache(_Path(__file__).parent)
 
 __getattr__, __dir__, _names = lazy_exports(__name__, {
     "Image": "io.images",

@@ -241,7 +241,7 @@ def _grid(data, key, shape, where, required):
         )
     try:
         array = np.asarray(value, dtype=float)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise InputError(f"{where}: '{key}' holds something that is not a number; fix the matrix file") from None
     if not np.all(np.isfinite(array)):
         raise InputError(f"{where}: '{key}' holds non-finite values; fix the matrix file")
@@ -255,7 +255,10 @@ def _vector(data, key, n, where, positive=False):
     if not isinstance(value, list) or len(value) != n or not all(
             isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
         raise InputError(f"{where}: '{key}' must be null or a list of {n} numbers (one per channel); fix the matrix file")
-    array = np.asarray(value, dtype=float)
+    try:
+        array = np.asarray(value, dtype=float)
+    except OverflowError:  # an integer too large for a float
+        array = np.array([np.inf])
     if not np.all(np.isfinite(array)) or (positive and np.any(array <= 0)):
         raise InputError(f"{where}: '{key}' must hold finite{' positive' if positive else ''} numbers; fix the matrix file")
     return array
@@ -312,6 +315,9 @@ def validate_matrix_dict(data, where: str = "matrix") -> None:
     for key in ("qc", "provenance"):
         if data.get(key) is not None and not isinstance(data.get(key), dict):
             raise InputError(f"{where}: '{key}' must be a JSON object; fix the matrix file")
+    flags = (data.get("qc") or {}).get("flags")
+    if flags is not None and not (isinstance(flags, list) and all(isinstance(f, str) for f in flags)):
+        raise InputError(f"{where}: 'qc.flags' must be a list of messages (strings); fix the matrix file")
 
 
 def _validate_noise_model(value, n_channels: int, where: str) -> None:

@@ -1,5 +1,7 @@
-"""Large fuzzing budget: mutated matrix, description, spectrum and TIFF files fed to every reader
-in-process (default 10,000 examples each) and to the command line in subprocesses (default 300).
+"""Large fuzzing budget: mutated matrix, description, spectrum and TIFF files, and coloc results
+given to `report`, fed to every reader in-process (default 10,000 examples each; a coloc file is
+loaded and built into a report; half the matrix and coloc examples keep valid JSON with one value
+of another type somewhere) and to the command line in subprocesses (default 300).
 
 Passes when no reader raises anything but InputError and no command exits with a code other than
 0 or 2 or prints a traceback. Prints the counts.
@@ -10,6 +12,7 @@ Passes when no reader raises anything but InputError and no command exits with a
 from __future__ import annotations
 
 import argparse
+import collections
 import random
 import subprocess
 import sys
@@ -45,6 +48,49 @@ def mutated(original: bytes, rng: random.Random) -> bytes:
     return data
 
 
+ODD_VALUES = ["0.5", "", [], {}, None, True, 5, -1, 10**400, [0.1], [[0.1, 0.2]], {"pearson": "x"}]
+
+
+def restructured(original: bytes, rng: random.Random) -> bytes:
+    """The JSON document with one value, anywhere in its tree, replaced by a value of another
+    type (or a deep nest): mistakes that keep the file valid JSON."""
+    import json
+
+    document = json.loads(original)
+    slots = []
+
+    def walk(node):
+        items = node.items() if isinstance(node, dict) else enumerate(node) if isinstance(node, list) else []
+        for key, value in items:
+            slots.append((node, key))
+            walk(value)
+
+    walk(document)
+    node, key = rng.choice(slots)
+    node[key] = rng.choice(ODD_VALUES + ["\0deep"])
+    return json.dumps(document).replace('"\\u0000deep"', "[" * 5000 + "]" * 5000).encode()
+
+
+def coloc_seed(folder: Path, matrix: Path) -> Path:
+    """A coloc results file as `unmix coloc --json` writes it, from the shipped demo sample."""
+    from unmix.cli import main as cli
+    from unmix.demo import demo_inputs
+
+    path = folder / "c.json"
+    code = cli(["coloc", str(demo_inputs()["sample"]), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin",
+                "--labels", "Fernlight,Emberin", "--rounds", "19", "--json", str(path), "--quiet"])
+    assert code == 0
+    return path
+
+
+def read_coloc(matrix: Path, path: Path):
+    """What `report --coloc` does with the file, short of writing the page."""
+    from unmix.matrix import load_matrix
+    from unmix.report.html import build_report, load_coloc_results
+
+    return build_report(load_matrix(matrix), coloc_records=load_coloc_results(path))
+
+
 def main():
     parser = argparse.ArgumentParser()
     parser.add_argument("--examples", type=int, default=10_000)
@@ -52,24 +98,32 @@ def main():
     args = parser.parse_args()
     rng = random.Random(0)
     failures = 0
+    crashes = collections.Counter()  # kind, exception and where in unmix -> count
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         seeds = _seed_files(folder)
+        seeds["coloc"] = coloc_seed(folder, seeds["matrix"])
         originals = {kind: Path(path).read_bytes() for kind, path in seeds.items()}
         for kind, path in seeds.items():
             target = folder / f"fuzz_{Path(path).name}"
             counts = {"accepted": 0, "refused": 0, "crashed": 0}
-            for _ in range(args.examples):
-                target.write_bytes(mutated(originals[kind], rng))
+            for example in range(args.examples):
+                structural = kind in ("coloc", "matrix") and example % 2 == 1
+                target.write_bytes(restructured(originals[kind], rng) if structural
+                                   else mutated(originals[kind], rng))
                 try:
-                    read_with(kind, target)
+                    if kind == "coloc":
+                        read_coloc(seeds["matrix"], target)
+                    else:
+                        read_with(kind, target)
                     counts["accepted"] += 1
                 except InputError:
                     counts["refused"] += 1
-                except Exception:  # noqa: BLE001 - what the fuzzing looks for
+                except Exception as exc:  # noqa: BLE001 - what the fuzzing looks for
                     counts["crashed"] += 1
-                    if counts["crashed"] <= 3:
-                        traceback.print_exc()
+                    frames = [f for f in traceback.extract_tb(exc.__traceback__) if "/unmix/" in f.filename]
+                    where = f"{Path(frames[-1].filename).name}:{frames[-1].lineno}" if frames else "?"
+                    crashes[f"{kind}: {type(exc).__name__} at {where}"] += 1
             failures += counts["crashed"]
             print(f"{kind}: {args.examples} examples: {counts['accepted']} read, {counts['refused']} refused "
                   f"with a clear error, {counts['crashed']} other exceptions")
@@ -78,6 +132,8 @@ def main():
             "description": lambda p: ["predict", "--config", str(p), "-o", str(folder / "p.json")],
             "image": lambda p: ["apply", "--matrix", str(seeds["matrix"]), str(p), "-o", str(folder / "out"),
                                 "--overwrite"],
+            "coloc": lambda p: ["report", "--matrix", str(seeds["matrix"]), "--coloc", str(p), "-o",
+                                str(folder / "r.html")],
         }
         codes = {"0": 0, "2": 0, "other": 0, "traceback": 0}
         for run in range(args.cli_runs):
@@ -97,6 +153,8 @@ def main():
         failures += codes["other"] + codes["traceback"]
         print(f"command line: {args.cli_runs} runs: exit 0 {codes['0']}, exit 2 {codes['2']}, "
               f"other exit codes {codes['other']}, tracebacks {codes['traceback']}")
+    for signature, count in crashes.most_common():
+        print(f"  {count} x {signature}")
     print("result:", "no crash" if failures == 0 else f"{failures} FAILURES")
     return 1 if failures else 0
 

@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+import os
 import sys
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError
-from .args import add_image_options, name_list, numbers, one_line
+from .args import add_image_options, check_output_folder, memory_size, name_list, numbers, one_line
 
 
 def add_parsers(sub, common) -> None:
@@ -25,6 +26,9 @@ def add_parsers(sub, common) -> None:
     apply.add_argument("--overwrite", action="store_true", help="replace outputs made from another matrix or input")
     apply.add_argument("--residual", action="store_true", help="also write the per-pixel misfit (RMS residual)")
     apply.add_argument("--saturation", metavar="V[,V...]", help="saturation level, one or one per channel")
+    apply.add_argument("--memory", metavar="SIZE", default="1G",
+                       help="most memory for pixels in flight, e.g. 512M or 4G (1G); fewer blocks are computed "
+                            "together, and planes too large for it are cut into strips of rows")
     add_image_options(apply)
     apply.set_defaults(run=run_apply)
 
@@ -32,30 +36,32 @@ def add_parsers(sub, common) -> None:
 def run_apply(args) -> int:
     import glob
 
-    from ..engine.batch import ApplySettings, apply_matrix
+    from ..engine.batch import ApplySettings, apply_matrix, is_set_member
     from ..matrix import load_matrix
     from ..report.summary import table
 
+    if args.method not in ("nnls", "ls"):
+        raise InputError(f"--method {args.method}: use nnls or ls")
+    settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
+                             residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
+                             axes=args.axes, channel_names=name_list(args.channel_names),
+                             memory=memory_size(args.memory))
     matrix = load_matrix(args.matrix)
     inputs = []
     for pattern in args.inputs:
         # A file that exists is taken as named, even if its name holds glob characters.
-        literal = Path(pattern).exists() or not any(ch in pattern for ch in "*?[")
-        matches = [pattern] if literal else sorted(glob.glob(pattern))
+        literal = os.path.lexists(pattern) or not any(ch in pattern for ch in "*?[")
+        # Outputs of an earlier run into the same folder are not inputs.
+        matches = [pattern] if literal else [p for p in sorted(glob.glob(pattern))
+                                             if not is_set_member(p, args.output)]
         if not matches:
             raise InputError(f"{pattern}: matches no file; check the pattern")
         inputs += matches
     for path in inputs:
         if not Path(path).exists():
             raise InputError(f"{path}: no such file; check the path")
-    outdir = Path(args.output)
-    if outdir.exists() and not outdir.is_dir():
-        raise InputError(f"-o {args.output}: is a file; give a folder")
-    if args.method not in ("nnls", "ls"):
-        raise InputError(f"--method {args.method}: use nnls or ls")
-    settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
-                             residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
-                             axes=args.axes, channel_names=name_list(args.channel_names))
+    extra = [] if args.background in ("matrix", "estimate") else [args.background]
+    outdir = check_output_folder(args.output, inputs + [args.matrix] + extra)
     penalty = matrix.noise_penalty()
     if not args.quiet:
         print(f"Matrix {args.matrix}: {len(matrix.labels)} labels in {len(matrix.channels)} channels; "

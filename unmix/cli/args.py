@@ -58,19 +58,63 @@ def name_list(text: str | None):
     return None if text is None else [n.strip() for n in text.split(",")]
 
 
+def _writable_folder(folder: Path, path: str, option: str) -> None:
+    """InputError unless `folder` (of the output `path`) is an existing, writable folder."""
+    try:
+        resolved = folder.resolve(strict=True)
+    except FileNotFoundError:
+        raise InputError(f"{option} {path}: folder {folder} does not exist; create it first") from None
+    except (OSError, RuntimeError):
+        raise InputError(f"{option} {path}: {folder} cannot be resolved (a symbolic link loop?); "
+                         "give another location") from None
+    if not resolved.is_dir():
+        raise InputError(f"{option} {path}: {folder} is a file, not a folder; give another location")
+    if not os.access(resolved, os.W_OK):
+        raise InputError(f"{option} {path}: folder {folder} is not writable; choose another location")
+
+
 def check_output(path: str, inputs, option: str = "-o") -> Path:
+    """The output file `path`, checked before anything is computed: not an input, not inside an
+    input folder (OME-Zarr), not a folder, in a writable folder, with a name a file system takes."""
+    from ..io.atomic import check_name_length, check_outside_inputs
+
     out = Path(path)
-    resolved = out.resolve()
-    for source in inputs:
-        if Path(source).resolve() == resolved:
-            raise InputError(f"{option} {path}: is also an input file; choose another output name")
+    check_outside_inputs(out, inputs, option)
+    check_name_length(out, option)
     if out.is_dir():
         raise InputError(f"{option} {path}: is a folder; give a file name")
-    if not out.parent.resolve().is_dir():
-        raise InputError(f"{option} {path}: folder {out.parent} does not exist; create it first")
-    if not os.access(out.parent.resolve(), os.W_OK):
-        raise InputError(f"{option} {path}: folder {out.parent} is not writable; choose another location")
+    if os.path.lexists(out) and not out.is_file():
+        raise InputError(f"{option} {path}: exists and is not a regular file; give another name")
+    _writable_folder(out.parent, path, option)
     return out
+
+
+def check_output_folder(path: str, inputs, option: str = "-o") -> Path:
+    """The output folder `path` (made later if missing), checked like :func:`check_output`."""
+    from ..io.atomic import check_outside_inputs
+
+    out = Path(path)
+    check_outside_inputs(out, inputs, option)
+    if os.path.lexists(out) and not out.is_dir():
+        raise InputError(f"{option} {path}: is a file; give a folder")
+    _writable_folder(next((p for p in [out, *out.parents] if os.path.lexists(p)), Path(".")), path, option)
+    return out
+
+
+def memory_size(text: str | None, option: str = "--memory") -> int | None:
+    """Bytes from a size like 512M, 4G or 1073741824 (powers of 1024)."""
+    if text is None:
+        return None
+    units = {"": 1, "K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}
+    value = text.strip().upper().removesuffix("IB").removesuffix("B")
+    unit = value[-1:] if value[-1:] in units else ""
+    try:
+        number = float(value[:len(value) - len(unit)])
+    except ValueError:
+        number = float("nan")
+    if not (number > 0 and number < float("inf")):
+        raise InputError(f"{option} {text!r}: give a size such as 512M or 4G")
+    return int(number * units[unit])
 
 
 def add_image_options(parser):

@@ -120,7 +120,7 @@ def _region_image(path: str, option: str, series: _Series, integer: bool):
     """A mask or label image as (Y, X) or (Z, Y, X) over the chosen planes."""
     from ..io.images import read_image
 
-    data = np.asarray(read_image(path).data)
+    data = np.asarray(read_image(path, mask=True).data)
     if data.ndim >= 3 and data.shape[0] == 1:
         data = data[0]  # a single-channel file
     if integer and data.dtype.kind not in "uib":
@@ -242,6 +242,10 @@ def _check_options(args, matrix) -> tuple[list, tuple | None]:
         raise InputError(f"--bleach-limit {args.bleach_limit}: give a fraction between 0 and 1, e.g. 0.2")
     if args.rounds < 19:
         raise InputError(f"--rounds {args.rounds}: give at least 19 (p cannot go below 1 / (rounds + 1))")
+    if args.seed < 0:
+        raise InputError(f"--seed {args.seed}: give a whole number of 0 or more")
+    if args.pixel_um is not None and not (0 < args.pixel_um < float("inf")):
+        raise InputError(f"--pixel-um {args.pixel_um}: give the pixel size in micrometres, a positive number")
     thresholds = None
     if args.thresholds:
         try:

@@ -13,7 +13,8 @@ def add_parsers(sub, common) -> None:
 
 def run_demo(args) -> int:
     from ..demo.runner import run_demo
+    from .args import check_output_folder
 
-    run_demo(args.output)
+    run_demo(check_output_folder(args.output, []))
     return 0
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import InputError
-from .args import check_output
+from .args import check_output, check_output_folder
 
 
 def add_parsers(sub, common) -> None:
@@ -71,27 +71,23 @@ def run_predict(args) -> int:
 
 def run_compare(args) -> int:
     from ..matrix import load_matrix
-    from ..optics.comparison import aligned_prediction, compare, write_comparison
-    from ..report.plots import comparison_figure, matrices_figure, save_png, spectra_figure
+    from ..optics.comparison import compare, write_comparison
+    from ..report.plots import comparison_pngs
     from ..report.summary import table
 
+    if not 0 <= args.tolerance < float("inf"):
+        raise InputError(f"--tolerance {args.tolerance}: give a finite relative tolerance of 0 or more (0.25)")
+    outdir = check_output_folder(args.output, [args.measured, args.predicted, args.config])
     measured = load_matrix(args.measured)
     predicted = load_matrix(args.predicted)
-    outdir = Path(args.output)
-    if outdir.exists() and not outdir.is_dir():
-        raise InputError(f"-o {args.output}: is a file; give a folder")
     description = None
     if args.config:
         from ..optics.description import load_description
 
         description = load_description(args.config)
     comparison = compare(measured, predicted, tolerance=args.tolerance, where=f"{args.measured} vs {args.predicted}")
-    paths = write_comparison(comparison, outdir)
-    save_png(matrices_figure(measured, aligned_prediction(measured, predicted, "compare")),
-             outdir / "compare-matrices.png")
-    save_png(comparison_figure(comparison), outdir / "compare-scatter.png")
-    if description is not None:
-        save_png(spectra_figure(description), outdir / "compare-spectra.png")
+    # Every figure is drawn before any file is written: all or none.
+    paths = write_comparison(comparison, outdir, extra=comparison_pngs(measured, predicted, comparison, description))
     if not args.quiet:
         rows = [["channel", "label", "measured [95 % CI]", "predicted", "ratio", "verdict"]]
         for r in comparison.coefficients:

@@ -37,10 +37,11 @@ def run_demo(outdir, out=None) -> dict:
     print(f"\nTrue coefficients inside the measured 95 % interval: {int(inside.sum())} of {inside.size}",
           file=out)
 
-    from ..engine.batch import apply_matrix
+    from ..engine.batch import ApplySettings, apply_matrix
     from ..io.images import read_image
 
-    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed")
+    # The folder is the demo's own: a rerun measures the matrix again and replaces its results.
+    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed", settings=ApplySettings(overwrite=True))
     if result.status == "failed":
         raise RuntimeError(f"demo sample failed to unmix: {result.message}")
     unmixed = read_image(result.output).data
@@ -98,9 +99,9 @@ def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdi
 
 def _measured_versus_predicted(matrix, outdir: Path, out):
     """Predict the matrix from the instrument's description and compare the measured one with it."""
-    from ..optics.comparison import aligned_prediction, compare, write_comparison
+    from ..optics.comparison import compare, write_comparison
     from ..optics.prediction import predict
-    from ..report.plots import comparison_figure, matrices_figure, save_png, spectra_figure
+    from ..report.plots import comparison_pngs
 
     scenario = load_scenario()
     description = scenario.described_optics()
@@ -108,10 +109,7 @@ def _measured_versus_predicted(matrix, outdir: Path, out):
     predicted.save(outdir / "demo_predicted.json")
     comparison = compare(matrix, predicted)
     compare_dir = outdir / "compare"
-    write_comparison(comparison, compare_dir)
-    save_png(matrices_figure(matrix, aligned_prediction(matrix, predicted, "demo")), compare_dir / "compare-matrices.png")
-    save_png(comparison_figure(comparison), compare_dir / "compare-scatter.png")
-    save_png(spectra_figure(description), compare_dir / "compare-spectra.png")
+    write_comparison(comparison, compare_dir, extra=comparison_pngs(matrix, predicted, comparison, description))
     print("\nMeasured versus predicted from the instrument's description:", file=out)
     for row in comparison.coefficients:
         print(f"  {row['label']} in {row['channel']}: measured {row['measured']:.4f} "

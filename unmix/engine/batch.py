@@ -15,7 +15,8 @@ saturation level of an input is found exactly from the peaks of every block;
 only when it is below the level the blocks were masked at are the masks made
 again in a second, reading-only pass.
 
-Outputs per input ``<name>`` in OUTDIR (see the command-line contract):
+Outputs per input ``<name>`` in OUTDIR (see the command-line contract) form
+one *output set*, whose members are listed in :data:`OUTPUT_SET`:
 
 - ``<name>.unmixed.ome.tif``: float32 abundances, one channel per label,
   axes of the input (written Z-major: ``TZCYX``), provenance in the OME
@@ -24,35 +25,49 @@ Outputs per input ``<name>`` in OUTDIR (see the command-line contract):
   saturated;
 - ``<name>.residual.ome.tif`` (optional): root-mean-square misfit per pixel.
 
-A finished output records the matrix checksum and a fingerprint of the
-input in its own metadata and in ``unmix-manifest.json``; a rerun keeps
-outputs whose record matches, and refuses (unless ``overwrite``) one made
-from another matrix or input.
+A set is judged and replaced as a unit. Every member records, in its own
+metadata, the identity of the run that made it (matrix checksum, input
+fingerprint, method, background, saturation and reading options); a rerun
+keeps the set only when every member it asks for is there with its own
+identity, and refuses (unless ``overwrite``) a set any member of which was
+made otherwise. All members are written under temporary names first; then,
+under an exclusive lock on the output folder, the set is judged again (another
+run may have finished meanwhile), renamed into place member by member, and
+recorded in ``unmix-manifest.json``. A run killed between those steps leaves
+a set whose members say what they are; the rerun repairs the set and the
+manifest from them.
+
+Memory: pixels in flight (blocks read, computed and waiting to be written)
+stay within ``ApplySettings.memory`` bytes, whatever the number of cores:
+the number of blocks computed together follows from the budget, and a plane
+too large for it is cut into strips of rows.
 """
 
 from __future__ import annotations
 
 import contextlib
-import errno
 import hashlib
 import json
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Callable, NamedTuple, Sequence
 
 import numpy as np
 
-from ..io.atomic import atomic_output, remove_stale_temporaries, temporary_sibling, write_text_atomic
 from ..errors import InputError
-from ..io.images import Image, check_axes, is_zarr_path, open_images, output_stem, read_images, read_provenance
+from ..io.atomic import (atomic_outputs, check_name_length, check_outside_inputs, discard_output, folder_lock,
+                         leased,
+                         remove_stale_temporaries, temporary_sibling, write_fault, write_text_atomic)
+from ..io.images import (Image, check_axes, is_zarr_path, names_text, open_images, output_stem, read_images,
+                         read_provenance)
 from ..matrix import BleedThroughMatrix
 from .solver import Unmixer
 
 MANIFEST = "unmix-manifest.json"
-# Faults of the output folder that the user can fix: full, read-only, no permission, over quota.
-_WRITE_FAULTS = {errno.ENOSPC, errno.EROFS, errno.EACCES, errno.EDQUOT}
+MANIFEST_FORMAT = "unmix-manifest"
 _FINGERPRINT_BYTES = 1 << 20
+DEFAULT_MEMORY = 1 << 30
 
 
 @dataclass(frozen=True)
@@ -70,6 +85,12 @@ class FileResult:
 
 @dataclass(frozen=True)
 class ApplySettings:
+    """Options of a batch.
+
+    `memory` bounds the bytes of pixels in flight (default 1 GiB); `batch_blocks`, when given,
+    fixes the number of blocks computed together instead (tests).
+    """
+
     method: str = "nnls"
     background: str = "matrix"  # "matrix", "estimate" or a path
     overwrite: bool = False
@@ -77,7 +98,75 @@ class ApplySettings:
     saturation: object = None  # one level, or one per channel; None: detected
     axes: str | None = None
     channel_names: Sequence[str] | None = None
-    batch_blocks: int = field(default_factory=lambda: max(2, 2 * (os.cpu_count() or 1)))
+    memory: int = DEFAULT_MEMORY
+    batch_blocks: int | None = None
+
+    def __post_init__(self):
+        if not isinstance(self.memory, (int, np.integer)) or self.memory < MIN_MEMORY:
+            raise InputError(f"--memory {self.memory}: give at least {MIN_MEMORY >> 20} MiB")
+
+
+MIN_MEMORY = 16 << 20
+
+
+# --- the output set ---------------------------------------------------------------
+
+class _BlockPixels(NamedTuple):
+    """What the members of an output set are computed from, for one block."""
+
+    block: np.ndarray  # (C, Y, X) input
+    abundances: np.ndarray  # (K, Y, X)
+    mask: np.ndarray  # (Y, X) saturation mask
+    unmixer: Unmixer
+    background: np.ndarray
+
+
+@dataclass(frozen=True)
+class OutputMember:
+    """One file of an input's output set, ``<name>.<member>.ome.tif`` (or ``.ome.zarr``).
+
+    `channels` gives its channel names from the matrix, `wanted` says whether a run with
+    these settings writes it, `planes` computes its planes (n, Y, X) of a block.
+    """
+
+    name: str
+    dtype: str
+    channels: Callable[[BleedThroughMatrix], list]
+    wanted: Callable[[ApplySettings], bool]
+    planes: Callable[[_BlockPixels], np.ndarray]
+
+
+# A new companion output (an uncertainty image, say) is one more entry here. The first member
+# is streamed into its file as blocks are computed; the others are spooled and written after it.
+OUTPUT_SET = (
+    OutputMember("unmixed", "float32", lambda m: list(m.labels), lambda s: True, lambda p: p.abundances),
+    OutputMember("saturation", "uint8", lambda m: ["saturated"], lambda s: True, lambda p: p.mask[None]),
+    OutputMember("residual", "float32", lambda m: ["residual_rms"], lambda s: s.residual,
+                 lambda p: p.unmixer.residual(p.block, p.abundances, p.background)[None]),
+)
+_MEMBERS = {member.name: member for member in OUTPUT_SET}
+_MASK = "saturation"  # the member recomputed when the input saturates below the provisional level
+
+
+def _wanted(settings: ApplySettings) -> list[str]:
+    return [member.name for member in OUTPUT_SET if member.wanted(settings)]
+
+
+def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
+    suffix = ".ome.zarr" if zarr_output else ".ome.tif"
+    return {member.name: outdir / f"{stem}.{member.name}{suffix}" for member in OUTPUT_SET}
+
+
+def is_set_member(path, outdir) -> bool:
+    """Whether `path` is named like a member of an output set in `outdir` (an output of apply)."""
+    path = Path(path)
+    try:
+        if path.resolve().parent != Path(outdir).resolve():
+            return False
+    except (OSError, RuntimeError):  # a symbolic link loop: judged later, with a clear message
+        return False
+    name = path.name.lower()
+    return any(name.endswith(f".{member.name}{suffix}") for member in OUTPUT_SET for suffix in (".ome.tif", ".ome.zarr"))
 
 
 def input_fingerprint(path) -> str:
@@ -101,15 +190,100 @@ def input_fingerprint(path) -> str:
     return digest.hexdigest()
 
 
+def _identity(matrix_sha: str, fingerprint: str, settings: ApplySettings) -> dict:
+    """What makes two runs' outputs for one input the same: recorded in every member of its set."""
+    background = settings.background
+    if background not in ("matrix", "estimate"):
+        background = {"path": str(Path(background).resolve()), "fingerprint": input_fingerprint(background)}
+    saturation = settings.saturation
+    identity = {"matrix_sha256": matrix_sha, "input_fingerprint": fingerprint, "method": settings.method,
+                "background": background,
+                "saturation": None if saturation is None else np.atleast_1d(saturation).astype(float).tolist(),
+                "axes": settings.axes,
+                "channel_names": None if settings.channel_names is None else list(settings.channel_names)}
+    return json.loads(json.dumps(identity))  # as it reads back from a file
+
+
+def _record_of(path: Path) -> dict | None:
+    """The record a member carries in its own metadata, or None (unreadable, not ours)."""
+    try:
+        record = read_provenance(path)
+    except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
+        return None
+    return record if isinstance(record, dict) else None
+
+
+@dataclass(frozen=True)
+class _SetState:
+    complete: bool  # every wanted member is there with this run's identity
+    foreign: list  # members there (wanted or not) made otherwise, or unreadable
+    records: dict  # member name -> record, for the members there with this run's identity
+
+
+def _judge(names: dict, wanted: list[str], identity: dict) -> _SetState:
+    complete, foreign, records = True, [], {}
+    for name, path in names.items():
+        if not os.path.lexists(path):
+            complete = complete and name not in wanted
+            continue
+        record = _record_of(path)
+        if record is None or record.get("identity") != identity:
+            foreign.append(path)
+            complete = complete and name not in wanted
+        else:
+            records[name] = record
+    return _SetState(complete and not foreign, foreign, records)
+
+
+def _check_manifest(path: Path) -> dict:
+    """The manifest's contents (a new one if there is none); InputError if it is not ours."""
+    if not os.path.lexists(path):
+        return {"format": MANIFEST_FORMAT, "version": 1, "outputs": {}}
+    if not path.is_file():
+        raise InputError(f"{path}: is not a file; move it away or choose another -o")
+    try:
+        manifest = json.loads(path.read_text(encoding="utf-8"))
+        if not (isinstance(manifest, dict) and manifest.get("format") == MANIFEST_FORMAT
+                and isinstance(manifest.get("outputs"), dict)):
+            raise ValueError
+    except (OSError, ValueError, RecursionError):
+        raise InputError(f"{path}: is not a manifest written by unmix apply (unreadable or another format); "
+                         "move it away (its entries would be lost) or choose another -o") from None
+    return manifest
+
+
+def _manifest_entry(path: Path, names: dict, state: _SetState, identity: dict, counts: dict) -> dict:
+    from ..io.provenance import utc_now
+
+    return {"input": str(path), "members": sorted(names[name].name for name in state.records),
+            "matrix_sha256": identity["matrix_sha256"], "method": identity["method"], "finished": utc_now(),
+            "nan_pixels": int(counts.get("nan_pixels", 0)), "saturated_pixels": int(counts.get("saturated_pixels", 0))}
+
+
+def _write_manifest(manifest_path: Path, manifest: dict) -> None:
+    write_text_atomic(manifest_path, json.dumps(manifest, indent=2) + "\n")
+
+
+def _lock_of(outdir: Path):
+    return folder_lock(outdir / f".{MANIFEST}.lock")
+
+
+def _counts_of(records: dict) -> dict:
+    return next((r["counts"] for r in records.values() if isinstance(r.get("counts"), dict)), {})
+
+
+# --- levels, background, channels ---------------------------------------------------
+
 def _sample_blocks(image: Image, settings: "ApplySettings", most: int = 8) -> np.ndarray:
     """Up to `most` evenly spaced blocks, all channels, channels first: (C, n, Y, X), a cheap
     sample of a large stack."""
     from ..io.images import read_block
 
-    keys = list(_block_keys(image))
+    keys = list(_block_keys(image, _rows_per_block(image, settings)))
     chosen = [keys[i] for i in np.unique(np.linspace(0, len(keys) - 1, min(most, len(keys))).astype(int))]
-    return np.stack([read_block(image.source, image.series, key, channels=image.channel_names, axes=settings.axes,
-                                channel_names=settings.channel_names) for key in chosen], axis=1)
+    blocks = [read_block(image.source, image.series, key, channels=image.channel_names, axes=settings.axes,
+                         channel_names=settings.channel_names) for key in chosen]
+    return np.concatenate([b.reshape(b.shape[0], 1, -1) for b in blocks], axis=2)
 
 
 def _provisional_levels(matrix: BleedThroughMatrix, image: Image, saturation) -> np.ndarray:
@@ -166,7 +340,8 @@ def _matched(matrix: BleedThroughMatrix, image: Image) -> Image:
     missing = [c for c in matrix.channels if c not in image.channel_names]
     if missing:
         raise InputError(
-            f"{image.name}: lacks channels {missing} that the matrix needs (it has {list(image.channel_names)}); "
+            f"{image.name}: lacks channels {names_text(missing)} that the matrix needs (it has "
+            f"{names_text(image.channel_names)}); "
             "check the channel names or give --channel-names"
         )
     extra = [c for c in image.channel_names if c not in matrix.channels]
@@ -175,20 +350,62 @@ def _matched(matrix: BleedThroughMatrix, image: Image) -> Image:
 
         from ..errors import InputWarning
 
-        warnings.warn(f"{image.name}: channels {extra} are not in the matrix and are ignored", InputWarning,
+        warnings.warn(f"{image.name}: channels {names_text(extra)} are not in the matrix and are ignored", InputWarning,
                       stacklevel=3)
     return image.select_channels(matrix.channels)
 
 
-def _block_keys(image: Image):
-    """One key per (T, Z) position, selecting all channels and the full plane."""
+# --- blocks and the memory budget ---------------------------------------------------
+
+def _bytes_per_pixel(n_channels: int, n_labels: int, itemsize: int, settings: ApplySettings) -> int:
+    """Bytes one pixel of a block holds while it is read, computed and waiting to be written: the
+    input, a converted copy, the abundances, the mask and (residual) the float64 misfit terms."""
+    held = n_channels * itemsize * 2 + n_labels * 4 * 2 + 1
+    if settings.residual:
+        held += 3 * n_channels * 8 + 4
+    return held
+
+
+# Copies of a batch alive at once: the one computing, the one being written, and the writer's
+# own copies (converted, padded tiles); measured with tests/benchmarks/bench_memory.py.
+_IN_FLIGHT = 3
+
+
+def _rows_per_block(image: Image, settings: ApplySettings, n_labels: int | None = None) -> int:
+    """Rows of a block: the whole plane when a block fits the memory budget with room for the
+    batches in flight, else strips (a multiple of 16 rows, for tiled output)."""
+    n_y, n_x = image.data.shape[-2:]
+    per_row = _bytes_per_pixel(image.n_channels, n_labels or image.n_channels, np.dtype(image.data.dtype).itemsize,
+                               settings) * n_x
+    rows = settings.memory // (_IN_FLIGHT * per_row)
+    if rows >= n_y:
+        return int(n_y)
+    return int(max(16, rows // 16 * 16))
+
+
+def _blocks_per_batch(image: Image, rows: int, n_labels: int, settings: ApplySettings) -> int:
+    """Blocks computed together: the batches in flight within the budget."""
+    if settings.batch_blocks is not None:
+        return settings.batch_blocks
+    per_block = _bytes_per_pixel(image.n_channels, n_labels, np.dtype(image.data.dtype).itemsize,
+                                 settings) * rows * image.data.shape[-1]
+    return int(max(1, min(64, settings.memory // (_IN_FLIGHT * per_block))))
+
+
+def _block_keys(image: Image, rows: int):
+    """One key per (T, Z) position and strip of `rows` rows, selecting all channels."""
     leading = [a for a in image.axes if a not in "CYX"]
     shape = [image.data.shape[image.axes.index(a)] for a in leading]
+    n_y = image.data.shape[-2]
     for position in np.ndindex(*shape):
-        key, it = [], iter(position)
-        for axis in image.axes:
-            key.append(next(it) if axis not in "CYX" else slice(None))
-        yield tuple(key)
+        for y0 in range(0, n_y, rows):
+            key, it = [], iter(position)
+            for axis in image.axes:
+                if axis == "Y":
+                    key.append(slice(None) if rows >= n_y else slice(y0, min(n_y, y0 + rows)))
+                else:
+                    key.append(next(it) if axis not in "CX" else slice(None))
+            yield tuple(key)
 
 
 def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
@@ -197,6 +414,7 @@ def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
     from .saturation import mask_and_peaks
 
     n = block.shape[0]
+    block = np.ascontiguousarray(block)
     mask = np.empty(block.shape[1:], np.uint8)
     maxima, at_maxima, counts = np.empty(n), np.empty(n, np.int64), np.empty(n, np.int64)
     mask_and_peaks(block.reshape(n, -1), np.asarray(levels, dtype=np.float64), mask.reshape(-1), maxima,
@@ -205,35 +423,36 @@ def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
 
 
 def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                 background, levels, residual: bool):
+                 background, levels, members: tuple):
     """Read one block from the file and unmix it.
 
-    Returns the abundances (K, Y, X), the saturation mask at `levels`, the
-    misfit (or None), the number of NaN pixels and the peak of each channel.
+    Returns the planes of each member of the output set named in `members` ({name: (n, Y, X)}),
+    the number of NaN pixels and the peak of each channel.
     """
     from ..io.images import read_block
 
     block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)  # (C, Y, X)
     abundances = unmixer.unmix(block, background)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
-    misfit = unmixer.residual(block, abundances, background) if residual else None
     mask, peaks = _mask_and_peaks(block, levels)
-    return abundances, mask, misfit, nan, peaks
+    pixels = _BlockPixels(block, abundances, mask, unmixer, background)
+    return {name: _MEMBERS[name].planes(pixels) for name in members}, nan, peaks
 
 
 def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                           background, levels, residual: bool, destinations: dict):
+                           background, levels, members: tuple, destinations: dict):
     """:func:`_unmix_block`, then store the block in its chunk of each output array (distinct
-    chunks: tasks write in parallel); returns the figures only, with the saturated count."""
+    chunks: tasks write in parallel); returns only the saturated count in place of the planes."""
     import zarr
 
-    abundances, saturated, misfit, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key,
-                                                             unmixer, background, levels, residual)
-    zarr.open_array(destinations["unmixed"], mode="r+")[key] = abundances
-    zarr.open_array(destinations["saturation"], mode="r+")[key] = saturated[None]
-    if misfit is not None:
-        zarr.open_array(destinations["residual"], mode="r+")[key] = misfit[None]
-    return None, int(np.count_nonzero(saturated)), None, nan, peaks
+    planes, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key, unmixer, background,
+                                      levels, members)
+    for name, values in planes.items():
+        array_path = Path(destinations[name])
+        if not (array_path / "zarr.json").exists():
+            raise FileNotFoundError(f"{array_path}: output removed while the run was writing it")
+        zarr.open_array(str(array_path), mode="r+")[key] = values
+    return int(np.count_nonzero(planes[_MASK])), nan, peaks
 
 
 def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels):
@@ -243,17 +462,13 @@ def _mask_block(path: str, series: int, axes, channel_names, channels, key, leve
                                       channel_names=channel_names), levels)[0]
 
 
-def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
-    suffix = ".ome.zarr" if zarr_output else ".ome.tif"
-    return {kind: outdir / f"{stem}.{kind}{suffix}" for kind in ("unmixed", "saturation", "residual")}
-
-
 def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerprint: str, settings: ApplySettings,
-                background: np.ndarray, series: int) -> dict:
+                background: np.ndarray, series: int, identity: dict) -> dict:
     from ..io import provenance as prov
 
     return {
         "command": "apply", "created": prov.utc_now(), "software": prov.software(),
+        "member": OUTPUT_SET[0].name, "identity": identity,
         "input": {"name": path.name, "path": str(path.resolve()), "fingerprint": fingerprint, "series": series},
         "matrix": {"sha256": matrix_sha, "contents": matrix.to_dict()},
         "method": settings.method,
@@ -264,19 +479,11 @@ def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerp
     }
 
 
-def _same_run(existing: dict | None, matrix_sha: str, fingerprint: str, settings: ApplySettings) -> bool:
-    if not existing:
-        return False
-    return (existing.get("matrix", {}).get("sha256") == matrix_sha
-            and existing.get("input", {}).get("fingerprint") == fingerprint
-            and existing.get("method") == settings.method)
-
-
-def _planes_writer(blocks, n_labels: int):
-    """Yield output planes (Z-major: for each block, its K label planes) from computed blocks."""
-    for block in blocks:
-        for k in range(n_labels):
-            yield block[k]
+def _companion_record(name: str, names: dict, identity: dict, counts: dict, levels=None) -> dict:
+    record = {"of": names[OUTPUT_SET[0].name].name, "member": name, "identity": identity, "counts": counts}
+    if name == _MASK and levels is not None:
+        record["levels"] = [float(v) for v in levels]
+    return record
 
 
 def _early_writeback(planes, handle, every: int = 64 << 20):
@@ -304,6 +511,8 @@ class _SeriesJob:
     background: np.ndarray
     levels: np.ndarray
     provenance: dict
+    rows: int  # rows per block
+    batch: int  # blocks per batch
 
 
 @dataclass
@@ -322,7 +531,11 @@ class _SeriesTally:
 
 def _in_batches(keys: list, size: int, task, task_arguments, compute):
     """Yield (key, task result) in order, computing `size` keys at a time; the next batch is
-    computed while the caller handles this one (reading, computing and writing overlap)."""
+    computed while the caller handles this one (reading, computing and writing overlap).
+
+    When the caller stops early (an error while writing), the batch still computing is waited
+    for before this generator closes: no task may write after its outputs were cleaned up.
+    """
     from concurrent.futures import ThreadPoolExecutor
 
     batches = [keys[start:start + size] for start in range(0, len(keys), size)]
@@ -330,11 +543,15 @@ def _in_batches(keys: list, size: int, task, task_arguments, compute):
         return
     with ThreadPoolExecutor(max_workers=1) as ahead:
         pending = ahead.submit(compute, task, [task_arguments(key) for key in batches[0]])
-        for index, batch in enumerate(batches):
-            results = pending.result()
-            if index + 1 < len(batches):
-                pending = ahead.submit(compute, task, [task_arguments(key) for key in batches[index + 1]])
-            yield from zip(batch, results)
+        try:
+            for index, batch in enumerate(batches):
+                results = pending.result()
+                if index + 1 < len(batches):
+                    pending = ahead.submit(compute, task, [task_arguments(key) for key in batches[index + 1]])
+                yield from zip(batch, results)
+        finally:
+            with contextlib.suppress(BaseException):
+                pending.result()
 
 
 def _task_source(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settings: ApplySettings) -> tuple:
@@ -344,19 +561,24 @@ def _task_source(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settin
 
 def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, unmixer: Unmixer,
                      settings: ApplySettings, compute, tally: _SeriesTally, destinations: dict | None = None):
-    """Yield (key, abundances, saturation mask, misfit or None) per block of a series, in order.
+    """Yield (key, {member: planes}) per block of a series, in order.
 
     NaN and saturated pixel counts and the channel peaks are added to `tally`.
-    With `destinations` (kind -> path of an OME-Zarr array), each task stores
-    its block there itself, in parallel, and the arrays yielded are None.
+    With `destinations` (member -> path of an OME-Zarr array), each task stores
+    its block there itself, in parallel, and the planes yielded are None.
     """
     source = _task_source(job, path, matrix, settings)
+    members = tuple(_wanted(settings))
     task, extra = (_unmix_block, ()) if destinations is None else (_unmix_block_into_zarr, (destinations,))
-    for key, (abundances, saturated, misfit, nan, peaks) in _in_batches(
-            list(_block_keys(job.image)), settings.batch_blocks, task,
-            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual, *extra), compute):
-        tally.add(nan, saturated if isinstance(saturated, int) else int(np.count_nonzero(saturated)), peaks)
-        yield key, abundances, saturated, misfit
+    for key, (planes, nan, peaks) in _in_batches(
+            list(_block_keys(job.image, job.rows)), job.batch, task,
+            lambda key: (*source, key, unmixer, job.background, job.levels, members, *extra), compute):
+        if destinations is not None:
+            tally.add(nan, planes, peaks)
+            yield key, None
+        else:
+            tally.add(nan, int(np.count_nonzero(planes[_MASK])), peaks)
+            yield key, planes
 
 
 def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settings: ApplySettings,
@@ -368,7 +590,7 @@ def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, s
     """
     source = _task_source(job, path, matrix, settings)
     tally.saturated = 0
-    for key, mask in _in_batches(list(_block_keys(job.image)), settings.batch_blocks, _mask_block,
+    for key, mask in _in_batches(list(_block_keys(job.image, job.rows)), job.batch, _mask_block,
                                  lambda key: (*source, key, levels), compute):
         tally.saturated += int(np.count_nonzero(mask))
         yield key, mask
@@ -383,6 +605,8 @@ class _PlaneSpool:
 
     def __init__(self, path: Path, dtype):
         self.path, self.dtype = Path(path), np.dtype(dtype)
+        self.lease = leased(self.path)
+        self.lease.__enter__()
         self.file = open(self.path, "w+b")
 
     def __enter__(self):
@@ -391,9 +615,22 @@ class _PlaneSpool:
     def __exit__(self, *exc_info):
         self.file.close()
         self.path.unlink(missing_ok=True)
+        self.lease.__exit__(None, None, None)
 
     def append(self, plane: np.ndarray) -> None:
+        self.file.seek(0, os.SEEK_END)
         self.file.write(np.ascontiguousarray(plane, dtype=self.dtype).tobytes())
+
+    def plane_at(self, index: int, plane_shape) -> np.ndarray:
+        """The `index`-th plane appended (all of shape `plane_shape`)."""
+        self.file.flush()
+        count = int(np.prod(plane_shape))
+        self.file.seek(index * count * self.dtype.itemsize)
+        return np.fromfile(self.file, dtype=self.dtype, count=count).reshape(plane_shape)
+
+    def clear(self) -> None:
+        self.file.seek(0)
+        self.file.truncate()
 
     def planes(self, plane_shape):
         self.file.flush()
@@ -406,89 +643,132 @@ class _PlaneSpool:
             yield plane.reshape(plane_shape)
 
 
+def _tiff_layout(image: Image, n_channels: int):
+    leading = "".join(a for a in image.axes if a not in "CYX")
+    shape = tuple(image.data.shape[image.axes.index(a)] for a in leading)
+    return leading + "CYX", shape + (n_channels,) + tuple(image.data.shape[-2:])
+
+
+def _physical(image: Image) -> dict:
+    return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
+
+
+def _padded(block: np.ndarray, rows: int) -> np.ndarray:
+    """A strip (n, y, X) padded with zeros to `rows` rows (the last strip of a plane is shorter)."""
+    if block.shape[1] == rows:
+        return block
+    padded = np.zeros((block.shape[0], rows) + block.shape[2:], block.dtype)
+    padded[:, :block.shape[1]] = block
+    return padded
+
+
+def _strip_tiles(strips, rows: int, n_y: int, scratch: Path, dtype):
+    """Strips (n, rows, X) of a series' planes as TIFF tiles, in file order: for each (T, Z)
+    position, every strip of plane 0, then of plane 1 ... Plane 0 goes straight through; the
+    strips of the later planes wait in a scratch file for their plane's turn."""
+    per_position = -(-n_y // rows)
+    with _PlaneSpool(scratch, dtype) as later:
+        done = 0
+        for block in strips:
+            block = _padded(block, rows)
+            n = block.shape[0]
+            yield block[0]
+            for k in range(1, n):
+                later.append(block[k])
+            done += 1
+            if done == per_position:
+                for k in range(1, n):
+                    for strip in range(per_position):
+                        yield later.plane_at(strip * (n - 1) + k - 1, block.shape[1:])
+                later.clear()
+                done = 0
+
+
 def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
-                   settings: ApplySettings, names: dict, compute) -> dict:
-    """Compute the blocks of every series in batches and stream them into the output files.
+                   settings: ApplySettings, names: dict, compute, tmp: dict) -> list:
+    """Compute the blocks of every series in batches and write the members of the output set
+    into their temporaries `tmp` (member -> path); the tallies per series.
 
     Each output file holds one series per input series, in the same order.
-    The abundances are streamed into their file as they are computed; the
-    per-pixel maps (saturation mask, residual) of each block are spooled to
-    scratch files beside the outputs and written out at the end, so memory
-    stays bounded by a few blocks whatever the size of the stack.
+    The first member is streamed into its file as blocks are computed; the
+    planes of the others are spooled to scratch files beside the outputs and
+    written out at the end, so memory stays bounded by a few blocks whatever
+    the size of the stack.
     """
     import tifffile
 
+    first, *others = _wanted(settings)
     tallies = [_SeriesTally() for _ in jobs]
+    identity = jobs[0].provenance["identity"]
 
-    def layout(image: Image, n_channels: int):
-        leading = "".join(a for a in image.axes if a not in "CYX")
-        shape = tuple(image.data.shape[image.axes.index(a)] for a in leading)
-        return leading + "CYX", shape + (n_channels,) + tuple(image.data.shape[-2:])
+    def blocks(job: _SeriesJob, spools: dict, tally: _SeriesTally):
+        with contextlib.closing(_computed_blocks(job, path, matrix, unmixer, settings, compute, tally)) as computed:
+            for _, planes in computed:
+                for name in others:
+                    spools[name].append(_padded(planes[name], job.rows) if strips(job) else planes[name])
+                yield planes[first]
 
-    def physical(image: Image) -> dict:
-        return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
+    def strips(job: _SeriesJob) -> bool:
+        return job.rows < job.image.data.shape[-2]
 
-    def blocks(job: _SeriesJob, maps: dict, tally: _SeriesTally):
-        for _, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings, compute,
-                                                                 tally):
-            maps["saturation"].append(saturated)
-            if misfit is not None:
-                maps["residual"].append(misfit)
-            yield abundances
+    def planes_of(blocks_of_series, job: _SeriesJob, name: str):
+        if not strips(job):
+            return (plane for block in blocks_of_series for plane in block)
+        return _strip_tiles(blocks_of_series, job.rows, job.image.data.shape[-2], temporary_sibling(names[name]),
+                            _MEMBERS[name].dtype)
 
-    def map_planes(kind: str, job: _SeriesJob, maps: dict, tally: _SeriesTally, levels: np.ndarray):
-        if kind == "saturation" and np.any(levels < job.levels):
-            return (mask for _, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally))
-        return maps[kind].planes(job.image.data.shape[-2:])
+    def tiling(job: _SeriesJob) -> dict:
+        if not strips(job):
+            return {}
+        return {"tile": (job.rows, -(-job.image.data.shape[-1] // 16) * 16)}
 
-    kinds = {"saturation": (np.uint8, "saturated"), "residual": (np.float32, "residual_rms")}
-    if not settings.residual:
-        del kinds["residual"]
+    def write(writer, name: str, job: _SeriesJob, planes, record: dict) -> None:
+        member = _MEMBERS[name]
+        axes, shape = _tiff_layout(job.image, len(member.channels(matrix)))
+        mask = name == _MASK
+        writer.write(planes, shape=shape, dtype=member.dtype, photometric="minisblack",
+                     # Masks are mostly zeros: the fastest zlib level packs them well.
+                     compression="zlib" if mask else None, compressionargs={"level": 1} if mask else None,
+                     metadata={"axes": axes, "Channel": {"Name": member.channels(matrix)},
+                               "Description": json.dumps(record, sort_keys=True), **_physical(job.image)},
+                     **tiling(job))
+
     with contextlib.ExitStack() as scratch:
-        maps_per_series = []
-        for _ in jobs:
-            maps = {}
-            for kind, (dtype, _) in kinds.items():
-                # A hidden ".partial" name: removed on exit, and by the stale
-                # clean-up if this process is killed.
-                maps[kind] = scratch.enter_context(_PlaneSpool(temporary_sibling(names[kind]), dtype))
-            maps_per_series.append(maps)
-        total_bytes = sum(np.prod(layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4 for job in jobs)
-        with atomic_output(names["unmixed"]) as tmp, open(tmp, "wb") as handle:
-            with tifffile.TiffWriter(handle, ome=True, bigtiff=total_bytes > 2**31) as writer:
-                for job, maps, tally in zip(jobs, maps_per_series, tallies):
-                    axes, shape = layout(job.image, len(matrix.labels))
-                    writer.write(_early_writeback(_planes_writer(blocks(job, maps, tally), len(matrix.labels)),
-                                                  handle),
-                                 shape=shape, dtype=np.float32, photometric="minisblack",
-                                 metadata={"axes": axes, "Channel": {"Name": list(matrix.labels)},
-                                           "Description": json.dumps(job.provenance, sort_keys=True),
-                                           **physical(job.image)})
+        spools = [{name: scratch.enter_context(_PlaneSpool(temporary_sibling(names[name]), _MEMBERS[name].dtype))
+                   for name in others} for _ in jobs]
+        total_bytes = sum(np.prod(_tiff_layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4
+                          for job in jobs)
+        with open(tmp[first], "wb") as handle, \
+                tifffile.TiffWriter(handle, ome=True, bigtiff=total_bytes > 2**31) as writer:
+            for job, spool, tally in zip(jobs, spools, tallies):
+                planes = _early_writeback(planes_of(blocks(job, spool, tally), job, first), handle)
+                write(writer, first, job, planes, job.provenance)
         levels = [_final_levels(job, tally.peaks, settings) for job, tally in zip(jobs, tallies)]
-        for kind, (_, channel) in kinds.items():
-            with atomic_output(names[kind]) as tmp:
-                with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
-                    for job, maps, tally, series_levels in zip(jobs, maps_per_series, tallies, levels):
-                        axes, shape = layout(job.image, 1)
-                        description = {"of": names["unmixed"].name}
-                        if kind == "saturation":
-                            description["levels"] = [float(v) for v in series_levels]
-                        writer.write(map_planes(kind, job, maps, tally, series_levels), shape=shape,
-                                     dtype=kinds[kind][0], photometric="minisblack",
-                                     # Masks are mostly zeros: the fastest zlib level packs them well.
-                                     compression="zlib" if kind == "saturation" else None,
-                                     compressionargs={"level": 1} if kind == "saturation" else None,
-                                     metadata={"axes": axes, "Channel": {"Name": [channel]},
-                                               "Description": json.dumps(description), **physical(job.image)})
-    return _totals(tallies)
+        for job, spool, tally, series_levels in zip(jobs, spools, tallies, levels):
+            if _MASK in spool and np.any(series_levels < job.levels):
+                # The input saturates below the level it was masked at: masks again, before any is written.
+                remasked = scratch.enter_context(_PlaneSpool(temporary_sibling(names[_MASK]), np.uint8))
+                for _, mask in _recomputed_masks(job, path, matrix, settings, series_levels, compute, tally):
+                    remasked.append(_padded(mask[None], job.rows) if strips(job) else mask[None])
+                spool[_MASK] = remasked
+        counts = _totals(tallies)
+        for name in others:
+            with tifffile.TiffWriter(tmp[name], ome=True, bigtiff=total_bytes > 2**31) as writer:
+                for job, spool, series_levels in zip(jobs, spools, levels):
+                    n = len(_MEMBERS[name].channels(matrix))
+                    blocks_of_series = spool[name].planes((n, job.rows, job.image.data.shape[-1]))
+                    write(writer, name, job, planes_of(blocks_of_series, job, name),
+                          _companion_record(name, names, identity, counts, series_levels))
+    return tallies
 
 
 def _totals(tallies) -> dict:
-    return {"nan": sum(t.nan for t in tallies), "saturated": sum(t.saturated for t in tallies)}
+    return {"nan_pixels": sum(t.nan for t in tallies), "saturated_pixels": sum(t.saturated for t in tallies)}
 
 
 def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: Unmixer, path: Path,
-                        settings: ApplySettings, names: dict, compute, writes_in_tasks: bool = False) -> dict:
+                        settings: ApplySettings, names: dict, compute, tmp: dict,
+                        writes_in_tasks: bool = False) -> list:
     """OME-Zarr input gives OME-Zarr outputs: blocks computed in parallel batches, each stored in its chunk.
 
     With `writes_in_tasks` (local threads) every task stores its own block, so the chunks are
@@ -496,53 +776,61 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
     see the output folder), overlapped with the computing of the next batch.
     """
     import zarr
-    from ome_zarr.writer import write_multiscales_metadata
+
+    from ..io.images import ome_zarr_writer
+
+    write_multiscales_metadata = ome_zarr_writer().write_multiscales_metadata
 
     tallies = []
-    kinds = ["unmixed", "saturation"] + (["residual"] if settings.residual else [])
-    channels = {"unmixed": list(matrix.labels), "saturation": ["saturated"], "residual": ["residual_rms"]}
-    dtypes = {"unmixed": np.float32, "saturation": np.uint8, "residual": np.float32}
-    with contextlib.ExitStack() as stack:
-        folders = {kind: stack.enter_context(atomic_output(names[kind])) for kind in kinds}
-        roots = {kind: zarr.open_group(str(folder), mode="w") for kind, folder in folders.items()}
-        if len(jobs) > 1:
-            for root in roots.values():
-                root.attrs["bioformats2raw.layout"] = 3
-        for i, job in enumerate(jobs):
-            image = job.image
-            c_axis = image.channel_axis
-            arrays = {}
-            for kind, root in roots.items():
-                group = root if len(jobs) == 1 else root.create_group(str(i))
-                shape = list(image.data.shape)
-                shape[c_axis] = len(channels[kind])
-                chunks = [1] * len(shape)
-                chunks[c_axis], chunks[-2], chunks[-1] = shape[c_axis], shape[-2], shape[-1]
-                arrays[kind] = group.create_array("0", shape=tuple(shape), chunks=tuple(chunks), dtype=dtypes[kind])
-                axes = [{"name": a.lower(), "type": {"T": "time", "C": "channel"}.get(a, "space")} for a in image.axes]
-                scale = [float(image.pixel_size.get(a, 1.0)) for a in image.axes]
-                write_multiscales_metadata(group, datasets=[{"path": "0", "coordinateTransformations": [
-                    {"type": "scale", "scale": scale}]}], axes=axes)
-                _add_zarr_attrs(group, {"omero": {"channels": [{"label": n, "active": True} for n in channels[kind]]}})
-                group.attrs["unmix_provenance"] = job.provenance if kind == "unmixed" else {"of": names["unmixed"].name}
-            tallies.append(tally := _SeriesTally())
-            destinations = None
-            if writes_in_tasks:
-                destinations = {kind: str(folders[kind] / ("" if len(jobs) == 1 else str(i)) / "0") for kind in kinds}
-            for key, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings,
-                                                                       compute, tally, destinations):
-                if destinations is not None:
+    wanted = _wanted(settings)
+    identity = jobs[0].provenance["identity"]
+    roots = {name: zarr.open_group(str(tmp[name]), mode="w") for name in wanted}
+    if len(jobs) > 1:
+        for root in roots.values():
+            root.attrs["bioformats2raw.layout"] = 3
+    groups_per_job, levels_per_job = [], []
+    for i, job in enumerate(jobs):
+        image = job.image
+        c_axis = image.channel_axis
+        arrays, groups = {}, {}
+        for name, root in roots.items():
+            channels = _MEMBERS[name].channels(matrix)
+            group = root if len(jobs) == 1 else root.create_group(str(i))
+            shape = list(image.data.shape)
+            shape[c_axis] = len(channels)
+            chunks = [1] * len(shape)
+            chunks[c_axis], chunks[-2], chunks[-1] = shape[c_axis], min(job.rows, shape[-2]), shape[-1]
+            arrays[name] = group.create_array("0", shape=tuple(shape), chunks=tuple(chunks),
+                                              dtype=_MEMBERS[name].dtype)
+            axes = [{"name": a.lower(), "type": {"T": "time", "C": "channel"}.get(a, "space")} for a in image.axes]
+            scale = [float(image.pixel_size.get(a, 1.0)) for a in image.axes]
+            write_multiscales_metadata(group, datasets=[{"path": "0", "coordinateTransformations": [
+                {"type": "scale", "scale": scale}]}], axes=axes)
+            _add_zarr_attrs(group, {"omero": {"channels": [{"label": n, "active": True} for n in channels]}})
+            groups[name] = group
+        tallies.append(tally := _SeriesTally())
+        destinations = None
+        if writes_in_tasks:
+            destinations = {name: str(tmp[name] / ("" if len(jobs) == 1 else str(i)) / "0") for name in wanted}
+        with contextlib.closing(_computed_blocks(job, path, matrix, unmixer, settings, compute, tally,
+                                                 destinations)) as computed:
+            for key, planes in computed:
+                if planes is None:
                     continue  # the task stored the block
-                arrays["unmixed"][key] = abundances
-                arrays["saturation"][key] = saturated[None]
-                if misfit is not None:
-                    arrays["residual"][key] = misfit[None]
-            levels = _final_levels(job, tally.peaks, settings)
-            if np.any(levels < job.levels):
-                for key, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally):
-                    arrays["saturation"][key] = mask[None]
-            arrays["saturation"].attrs["unmix_saturation_levels"] = [float(v) for v in levels]
-    return _totals(tallies)
+                for name, values in planes.items():
+                    arrays[name][key] = values
+        levels = _final_levels(job, tally.peaks, settings)
+        if _MASK in arrays and np.any(levels < job.levels):
+            for key, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally):
+                arrays[_MASK][key] = mask[None]
+        groups_per_job.append(groups)
+        levels_per_job.append(levels)
+    counts = _totals(tallies)
+    for job, groups, levels in zip(jobs, groups_per_job, levels_per_job):
+        for name, group in groups.items():
+            group.attrs["unmix_provenance"] = (job.provenance if name == wanted[0]
+                                               else _companion_record(name, names, identity, counts, levels))
+    return tallies
 
 
 def _add_zarr_attrs(group, extra: dict) -> None:
@@ -554,16 +842,28 @@ def _add_zarr_attrs(group, extra: dict) -> None:
 
 
 def _local_compute(task, argument_lists):
+    """Compute the tasks on local threads (as many as tasks, at most one per core); when one
+    fails, the others still running are waited for and those not started are cancelled."""
+    from concurrent.futures import ThreadPoolExecutor
+
     import dask
 
     tasks = [dask.delayed(task, pure=False)(*arguments) for arguments in argument_lists]
-    return dask.compute(*tasks, scheduler="threads")
+    pool = ThreadPoolExecutor(max_workers=max(1, min(len(tasks), os.cpu_count() or 1)))
+    try:
+        return dask.compute(*tasks, scheduler="threads", pool=pool)
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
 
 
 def _distributed_compute(client):
     def compute(task, argument_lists):
         futures = [client.submit(task, *arguments, pure=False) for arguments in argument_lists]
-        return client.gather(futures)
+        try:
+            return client.gather(futures)
+        except BaseException:
+            client.cancel(futures)
+            raise
 
     return compute
 
@@ -583,6 +883,20 @@ def plan_outputs(inputs: Sequence, outdir: Path) -> list[tuple[Path, str]]:
         seen[stem] = path
         plan.append((path, stem))
     return plan
+
+
+def _connect(scheduler: str):
+    """A client of the Dask scheduler at `scheduler`; InputError when it cannot be reached."""
+    if "://" not in scheduler and ":" not in scheduler:
+        raise InputError(f"--scheduler {scheduler}: not an address; give HOST:PORT or tcp://HOST:PORT of a "
+                         "running Dask scheduler")
+    try:
+        from distributed import Client
+
+        return Client(scheduler, timeout="10s", set_as_default=False)
+    except (OSError, TimeoutError, ValueError, TypeError) as exc:
+        raise InputError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({type(exc).__name__}); "
+                         "check the address and that the scheduler is running") from None
 
 
 def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settings: ApplySettings | None = None,
@@ -608,9 +922,12 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
         raise InputError(f"matrix: {exc}; measure or describe more channels, or fewer labels") from None
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
+    background_file = [] if settings.background in ("matrix", "estimate") else [settings.background]
+    check_outside_inputs(outdir, [p for p, _ in plan] + background_file, "-o")
     resolved_inputs = {Path(p).resolve() for p, _ in plan}
     for source, stem in plan:
         for name in _output_names(outdir, stem, is_zarr_path(source)).values():
+            check_name_length(name, f"{source}: output")
             if name.resolve() in resolved_inputs:
                 raise InputError(f"{name}: the output would replace an input; choose another output folder")
     if settings.background not in ("matrix", "estimate") and not Path(settings.background).exists():
@@ -619,15 +936,11 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
     existing = outdir if outdir.exists() else next((p for p in outdir.parents if p.exists()), Path("."))
     if not existing.is_dir() or not os.access(existing, os.W_OK):
         raise InputError(f"{outdir}: output folder is not writable; choose another -o")
+    manifest_path = outdir / MANIFEST
+    _check_manifest(manifest_path)
 
     if scheduler:
-        try:
-            from distributed import Client
-
-            client = Client(scheduler, timeout="10s", set_as_default=False)
-        except (OSError, TimeoutError) as exc:
-            raise InputError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc}); "
-                             "check the address and that the scheduler is running") from None
+        client = _connect(scheduler)
         compute = _distributed_compute(client)
     else:
         client, compute = None, _local_compute
@@ -637,67 +950,34 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
 
         def compute(task, argument_lists):
             results = compute_blocks(task, argument_lists)
-            if task is _unmix_block:
+            if task in (_unmix_block, _unmix_block_into_zarr):
                 progress(len(argument_lists))
             return results
 
-    manifest_path = outdir / MANIFEST
     if outdir.is_dir():
-        # Temporaries left by a killed run (outputs or manifest): never under a final name, removed here.
+        # Temporaries left by killed runs (outputs or manifest): never under a final name, removed here.
         for source, stem in plan:
             for name in _output_names(outdir, stem, is_zarr_path(source)).values():
                 remove_stale_temporaries(name)
         remove_stale_temporaries(manifest_path)
     results = []
+    made = not outdir.exists()
     try:
         for path, stem in plan:
             results.append(_apply_one(matrix, unmixer, matrix_sha, path, stem, outdir, settings, compute,
                                       compute_is_local=client is None))
-            if results[-1].status == "written":
-                _record(manifest_path, results[-1], matrix_sha, settings)
     finally:
+        if made and outdir.is_dir() and not any(r.status == "written" for r in results):
+            # Nothing was written: the folder this run made goes too (a lock file is all it may hold).
+            with contextlib.suppress(OSError):
+                (outdir / f".{MANIFEST}.lock").unlink(missing_ok=True)
+                outdir.rmdir()
         if client is not None:
             client.close()
         from ..io.images import close_block_sources
 
         close_block_sources()
     return results
-
-
-def _record(manifest_path: Path, result: FileResult, matrix_sha: str, settings: ApplySettings) -> None:
-    """Add one finished output to the manifest: read, update and replace it under a lock, so that
-    runs sharing an output folder do not lose each other's entries."""
-    from ..io.provenance import utc_now
-
-    with _manifest_lock(manifest_path):
-        try:
-            manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-            if not isinstance(manifest, dict) or not isinstance(manifest.get("outputs"), dict):
-                raise ValueError
-        except (OSError, ValueError):
-            manifest = {"format": "unmix-manifest", "version": 1, "outputs": {}}
-        manifest["outputs"][Path(result.output).name] = {
-            "input": result.input, "matrix_sha256": matrix_sha, "method": settings.method, "finished": utc_now(),
-            "nan_pixels": result.nan_pixels, "saturated_pixels": result.saturated_pixels,
-        }
-        write_text_atomic(manifest_path, json.dumps(manifest, indent=2) + "\n")
-
-
-@contextlib.contextmanager
-def _manifest_lock(manifest_path: Path):
-    """An exclusive advisory lock (POSIX flock) on a hidden file beside the manifest; released when
-    the process ends, even when it is killed."""
-    try:
-        import fcntl
-    except ImportError:  # no flock on this platform: atomic replacement alone
-        yield
-        return
-    with open(manifest_path.with_name(f".{manifest_path.name}.lock"), "a+b") as handle:
-        fcntl.flock(handle, fcntl.LOCK_EX)
-        try:
-            yield
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
 
 
 def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path, settings: ApplySettings,
@@ -710,42 +990,72 @@ def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path,
     except InputError as exc:
         return FileResult(str(path), None, "failed", str(exc))
     except OSError as exc:
-        if exc.errno not in _WRITE_FAULTS:
+        fault = write_fault(exc, names[OUTPUT_SET[0].name])
+        if fault is None:
             raise
-        return FileResult(str(path), None, "failed",
-                          f"{names['unmixed']}: cannot write ({exc.strerror}); free space or choose another -o")
+        return FileResult(str(path), None, "failed", str(fault))
 
 
 def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, names: dict, outdir: Path,
                 settings: ApplySettings, compute, compute_is_local: bool) -> FileResult:
     fingerprint = input_fingerprint(path)
-    if names["unmixed"].exists():
-        try:
-            existing = read_provenance(names["unmixed"])
-        except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
-            existing = None
-        same = _same_run(existing, matrix_sha, fingerprint, settings)
-        complete = names["saturation"].exists() and (names["residual"].exists() or not settings.residual)
-        if same and complete:
-            return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
-        if not same and not settings.overwrite:
-            raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
-                             "pass --overwrite to replace it or choose another -o")
-        # Same run, interrupted before its mask was written: done again below.
+    identity = _identity(matrix_sha, fingerprint, settings)
+    wanted = _wanted(settings)
+    first = names[wanted[0]]
+    manifest_path = outdir / MANIFEST
+    state = _judge(names, wanted, identity)
+    if state.foreign and not settings.overwrite:
+        raise InputError(f"{state.foreign[0]}: exists and was made from another matrix, input or settings; "
+                         "pass --overwrite to replace the outputs of this input or choose another -o")
+    if state.complete:
+        counts = _counts_of(state.records)
+        with _lock_of(outdir):
+            # A run killed after its renames but before the manifest: the entry is made again here.
+            manifest = _check_manifest(manifest_path)
+            entry = manifest["outputs"].get(first.name)
+            if not isinstance(entry, dict) or entry.get("matrix_sha256") != identity["matrix_sha256"] \
+                    or sorted(entry.get("members", [])) != sorted(names[n].name for n in state.records):
+                manifest["outputs"][first.name] = _manifest_entry(path, names, state, identity, counts)
+                _write_manifest(manifest_path, manifest)
+        return FileResult(str(path), str(first), "kept", "already done with this matrix",
+                          nan_pixels=int(counts.get("nan_pixels", 0)),
+                          saturated_pixels=int(counts.get("saturated_pixels", 0)))
+    # Members missing or made otherwise (with --overwrite): the whole set is written again.
     jobs = []
     for image in images:
         image = _matched(matrix, image)
+        rows = _rows_per_block(image, settings, len(matrix.labels))
         background = _background_for(matrix, image, settings)
         jobs.append(_SeriesJob(image, image.series, background,
                                _provisional_levels(matrix, image, settings.saturation),
-                               _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series)))
+                               _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series,
+                                           identity),
+                               rows, _blocks_per_batch(image, rows, len(matrix.labels), settings)))
     outdir.mkdir(parents=True, exist_ok=True)
-    if is_zarr_path(path):
-        totals = _write_zarr_outputs(jobs, matrix, unmixer, path, settings, names, compute,
-                                     writes_in_tasks=compute_is_local)
-    else:
-        totals = _write_outputs(jobs, matrix, unmixer, path, settings, names, compute)
+    tallies: list = []
+
+    def commit(rename):
+        with _lock_of(outdir):
+            manifest = _check_manifest(manifest_path)
+            now = _judge(names, wanted, identity)
+            if now.foreign and not settings.overwrite:
+                raise InputError(f"{now.foreign[0]}: was written meanwhile by another run from another matrix, "
+                                 "input or settings; pass --overwrite to replace it or choose another -o")
+            rename()
+            for foreign in now.foreign:
+                if foreign not in [names[n] for n in wanted]:
+                    discard_output(foreign)  # a member of the replaced set that this run does not write
+            written = _SetState(True, [], {name: {} for name in wanted})
+            manifest["outputs"][first.name] = _manifest_entry(path, names, written, identity, _totals(tallies))
+            _write_manifest(manifest_path, manifest)
+
+    writer = _write_zarr_outputs if is_zarr_path(path) else _write_outputs
+    extra = {"writes_in_tasks": compute_is_local} if is_zarr_path(path) else {}
+    with atomic_outputs([names[n] for n in wanted], commit=commit) as temporaries:
+        tallies += writer(jobs, matrix, unmixer, path, settings, names, compute, dict(zip(wanted, temporaries)),
+                          **extra)
+    totals = _totals(tallies)
     pixels = sum(int(np.prod([job.image.data.shape[job.image.axes.index(a)] for a in job.image.axes if a != "C"]))
                  for job in jobs)
-    return FileResult(str(path), str(names["unmixed"]), "written", nan_pixels=totals["nan"],
-                      saturated_pixels=totals["saturated"], pixels=pixels)
+    return FileResult(str(path), str(first), "written", nan_pixels=totals["nan_pixels"],
+                      saturated_pixels=totals["saturated_pixels"], pixels=pixels)

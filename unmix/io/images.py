@@ -31,7 +31,7 @@ from typing import Any, Sequence
 import numpy as np
 
 from .atomic import atomic_output
-from ..errors import InputError
+from ..errors import InputError, check_regular_file
 
 CANONICAL_AXES = "TCZYX"
 TIFF_SUFFIXES = (".ome.tif", ".ome.tiff", ".tif", ".tiff")
@@ -144,6 +144,30 @@ def _default_channel_names(n: int) -> tuple[str, ...]:
     return tuple(f"ch{i}" for i in range(n))
 
 
+def names_text(names: Sequence[str], most: int = 8) -> str:
+    """Channel or label names for a message: the first `most`, and how many more."""
+    names = [str(n) for n in names]
+    shown = ", ".join(repr(n) for n in names[:most])
+    return f"[{shown}]" if len(names) <= most else f"[{shown} and {len(names) - most} more]"
+
+
+def _usable_names(names: list, n_channels: int, path) -> tuple[str, ...]:
+    """The metadata's channel names, or ch0, ch1 ... when there are none or they cannot name the
+    channels (a warning says which, when the metadata gave some)."""
+    if len(names) == n_channels and len(set(names)) == len(names) and all(names):
+        return tuple(names)
+    if any(names):
+        import warnings
+
+        from ..errors import InputWarning
+
+        problem = ("are duplicated or empty" if len(names) == n_channels
+                   else f"are {len(names)} for {n_channels} channels")
+        warnings.warn(f"{path}: the channel names in its metadata {names_text(names)} {problem}; reading them as "
+                      "ch0, ch1, ...; give --channel-names", InputWarning, stacklevel=4)
+    return _default_channel_names(n_channels)
+
+
 def _apply_overrides(image: Image, channel_names: Sequence[str] | None) -> Image:
     if channel_names is None:
         return image
@@ -154,7 +178,7 @@ def _apply_overrides(image: Image, channel_names: Sequence[str] | None) -> Image
             f"{image.n_channels} channels; give exactly one name per channel"
         )
     if len(set(names)) != len(names) or any(not n for n in names):
-        raise InputError(f"{image.name}: --channel-names must be unique and non-empty; got {list(names)}")
+        raise InputError(f"{image.name}: --channel-names must be unique and non-empty; got {names_text(names)}")
     return replace(image, channel_names=names)
 
 
@@ -164,7 +188,7 @@ def is_zarr_path(path: Path) -> bool:
 
 
 def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
-                lazy: bool = False, _open_files: list | None = None) -> list[Image]:
+                lazy: bool = False, mask: bool = False, _open_files: list | None = None) -> list[Image]:
     """Read every series (position) of a TIFF, OME-TIFF or OME-Zarr file.
 
     Parameters
@@ -178,6 +202,8 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
         Overrides the channel names of the metadata.
     lazy : bool
         Return dask arrays read on demand instead of numpy arrays.
+    mask : bool
+        The image is a mask or a label image: boolean pixels are accepted too.
 
     Returns
     -------
@@ -189,8 +215,8 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
         For a missing, unreadable or unsupported file, naming it.
     """
     path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: no such file; check the path")
+    if not path.is_dir():
+        check_regular_file(path, "image file")  # a pipe or a device would block or never end
     if axes is not None:
         try:
             axes = check_axes(axes, "--axes")
@@ -202,13 +228,15 @@ def read_images(path, *, axes: str | None = None, channel_names: Sequence[str] |
         raise InputError(f"{path}: is a folder but not an OME-Zarr image; give a TIFF file or an OME-Zarr folder")
     else:
         images = _read_tiff(path, axes, lazy, _open_files)
+    for image in images:
+        _check_pixel_type(image.data.dtype, path, mask)
     return [_apply_overrides(im, channel_names) for im in images]
 
 
 def read_image(path, *, axes: str | None = None, channel_names: Sequence[str] | None = None,
-               lazy: bool = False, series: int = 0) -> Image:
+               lazy: bool = False, mask: bool = False, series: int = 0) -> Image:
     """Read one series of an image file; see :func:`read_images`."""
-    images = read_images(path, axes=axes, channel_names=channel_names, lazy=lazy)
+    images = read_images(path, axes=axes, channel_names=channel_names, lazy=lazy, mask=mask)
     if not 0 <= series < len(images):
         raise InputError(f"{path}: has {len(images)} series; series {series} does not exist")
     return images[series]
@@ -276,7 +304,8 @@ def _tiff_axes(tif, series, axes_override: str | None, path: Path) -> str:
                 f"has {len(shape)} dimensions {tuple(shape)}; give one letter per dimension"
             )
         return axes_override
-    if tif.is_ome or tif.is_imagej:
+    if tif.is_ome or tif.is_imagej or series.axes.endswith("S"):
+        # Samples per pixel (RGB) are channels: an RGB file is 3 channels, not 384 rows of them.
         axes = series.axes.replace("S", "C") if "C" not in series.axes else series.axes
         if set(axes) <= set(CANONICAL_AXES) and len(set(axes)) == len(axes):
             return axes
@@ -319,7 +348,7 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: li
             raise
         except Exception as exc:
             tif.close()
-            raise InputError(f"{path}: damaged or unsupported TIFF ({_short(exc)}); check the file") from None
+            raise tiff_failure(exc, path) from None
         if not lazy:
             tif.close()
         elif open_files is not None:
@@ -337,10 +366,11 @@ def _read_tiff(path: Path, axes_override: str | None, lazy: bool, open_files: li
     return images
 
 
-def _check_pixel_type(dtype, path: Path) -> None:
-    """Integer and floating-point pixels are accepted (the contract); anything else is refused."""
+def _check_pixel_type(dtype, path: Path, mask: bool = False) -> None:
+    """Integer and floating-point pixels are accepted (the contract), and booleans in a `mask`;
+    anything else is refused."""
     dtype = np.dtype(dtype)
-    if dtype.kind not in "uif":
+    if dtype.kind not in ("uifb" if mask else "uif"):
         raise InputError(f"{path}: pixel type {dtype} is not supported; convert the image to integer or "
                          "floating-point pixels")
 
@@ -362,33 +392,99 @@ def _check_extent(series, path: Path, index: int) -> None:
             raise InputError(f"{path}: truncated: image data end beyond the end of the file; copy the file again")
 
 
+def tiff_failure(exc: Exception, path) -> InputError:
+    """The one-line InputError for a TIFF whose pixels cannot be decoded: the codec is not
+    installed (say what to install), or the data are damaged (say so)."""
+    text = _short(exc)
+    if isinstance(exc, MemoryError):
+        return InputError(f"{path}: too large to read into this machine's memory; crop it, or read it in parts")
+    if text.startswith("failed to read "):
+        return InputError(f"{path}: image data end early (a file still being written, or truncated; {text}); "
+                          "wait until it is complete, or copy it again")
+    if isinstance(exc, ImportError) or "imagecodecs" in text:
+        return InputError(f"{path}: its pixels are compressed with a method this installation cannot decode "
+                          f"({text}); install the imagecodecs package (pip install imagecodecs)")
+    return InputError(f"{path}: damaged image data, cannot be decoded ({type(exc).__name__}: {text}); "
+                      "copy or export the file again")
+
+
+def _check_codec(tif, series, path: Path) -> None:
+    """Refuse, before any pixel is read, a series compressed with a codec that is not installed."""
+    import tifffile
+
+    page = series.pages[0]
+    if page is None:
+        return
+    compression = int(page.keyframe.compression)
+    if compression == 1:
+        return
+    try:
+        codec = tifffile.TIFF.DECOMPRESSORS[compression]
+        fh = tif.filehandle
+        with fh.lock:
+            fh.seek(page.dataoffsets[0])
+            segment = fh.read(min(page.databytecounts[0], 1 << 20))
+        codec(segment)
+    except (ImportError, KeyError) as exc:
+        raise tiff_failure(exc, path) from None
+    except Exception:  # noqa: BLE001 - a partial segment or a codec needing tables: the real read decides
+        pass
+
+
+def available_memory() -> int | None:
+    """Bytes of memory available to a new allocation (Linux MemAvailable), or None if unknown."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as handle:
+            for line in handle:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def _check_fits_in_memory(nbytes: int, path) -> None:
+    """Refuse, before reading, a whole image larger than the memory available: a valid file that
+    is too large for this machine is not a damaged one."""
+    available = available_memory()
+    if available is not None and nbytes > available:
+        raise InputError(f"{path}: {nbytes / 2**30:.1f} GiB of pixels, more than the {available / 2**30:.1f} GiB "
+                         "of memory available here; crop the image (a smaller field or fewer planes) or use a larger "
+                         "machine")
+
+
 def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list[Image]:
     ome = _ome_channel_names_and_sizes(tif.ome_metadata) if tif.is_ome else []
     images = []
+    incomplete = ("holds no complete image (a file still being written, or truncated); wait until it is "
+                  "complete, or copy it again")
     if not tif.series:
-        raise InputError(f"{path}: the TIFF holds no image; check the file")
+        raise InputError(f"{path}: {incomplete}")
     for index, series in enumerate(tif.series):
+        if len(series.shape) < 2:
+            raise InputError(f"{path}: series {index} {incomplete}")
         n_pixels = int(np.prod(series.shape, dtype=np.float64))
         if n_pixels == 0 or n_pixels > MAX_PIXELS:
             raise InputError(f"{path}: series {index} declares an impossible shape {tuple(series.shape)}; check the file")
         _check_extent(series, path, index)
+        _check_codec(tif, series, path)
         axes = _tiff_axes(tif, series, axes_override, path)
         if lazy:
             import dask.array as da
             import zarr
 
-            store = series.aszarr()
+            # Level 0 of a pyramid: the full resolution, as the eager reader gives.
+            store = series.aszarr(level=0)
             data = da.from_zarr(zarr.open(store, mode="r"))
         else:
+            _check_fits_in_memory(n_pixels * np.dtype(series.dtype).itemsize, path)
             data = series.asarray()
             if data.size != n_pixels:
                 raise InputError(f"{path}: truncated image data in series {index}; check the file")
-        _check_pixel_type(data.dtype, path)
         data, canonical = to_canonical(data, axes)
         n_channels = data.shape[canonical.index("C")]
         names, sizes = ome[index] if index < len(ome) else ([], {})
-        if len(names) != n_channels or len(set(names)) != len(names) or not all(names):
-            names = _default_channel_names(n_channels)
+        names = _usable_names(names, n_channels, path)
         images.append(Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
                             source=str(path), series=index))
     return images
@@ -456,14 +552,17 @@ def _read_ngff_image(group, attrs, path: Path, index: int, axes_override, lazy: 
             for letter, value in zip(axes, transform["scale"]):
                 if letter in "XYZ":
                     sizes[letter] = float(value)
-    _check_pixel_type(array.dtype, path)
+    _check_pixel_type(array.dtype, path, mask=True)  # before reading: the type must be known to numpy
+    if array.nchunks > 0 and array.nchunks_initialized == 0:
+        raise InputError(f"{path}: the OME-Zarr array holds no data at all (every chunk is missing); the copy is "
+                         "incomplete, copy the folder again")
+    if not lazy:
+        _check_fits_in_memory(int(np.prod(array.shape, dtype=np.float64)) * array.dtype.itemsize, path)
     data = da.from_zarr(array) if lazy else np.asarray(array[...])
     data, canonical = to_canonical(data, axes)
     n_channels = data.shape[canonical.index("C")]
     channels = attrs.get("omero", {}).get("channels", [])
-    names = [str(ch.get("label", "")) for ch in channels]
-    if len(names) != n_channels or len(set(names)) != len(names) or not all(names):
-        names = _default_channel_names(n_channels)
+    names = _usable_names([str(ch.get("label", "")) for ch in channels], n_channels, path)
     return Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
                  source=str(path), series=index)
 
@@ -506,14 +605,44 @@ class _BlockSource:
             self.tif.close()
 
     def read(self, key: tuple) -> np.ndarray:
-        if self.pages is None:
-            import dask
+        try:
+            return self._read(key)
+        except (InputError, OSError):
+            raise
+        except Exception as exc:  # a codec missing or a damaged strip, found only now
+            raise tiff_failure(exc, self.image.source) from None
 
-            with dask.config.set(scheduler="synchronous"):
-                return np.asarray(self.image.data[key])
-        pages = self.pages[key]
-        planes = self.tif.asarray(key=[int(i) for i in pages.ravel()], series=self.image.series, maxworkers=1)
-        return planes.reshape(pages.shape[:-2] + planes.shape[-2:])
+    def _read(self, key: tuple) -> np.ndarray:
+        rows = key[-2]
+        whole_planes = rows == slice(None)
+        if self.pages is not None and whole_planes:
+            pages = self.pages[key]
+            planes = self.tif.asarray(key=[int(i) for i in pages.ravel()], series=self.image.series, maxworkers=1)
+            return planes.reshape(pages.shape[:-2] + planes.shape[-2:])
+        if self.pages is not None and self._contiguous():
+            # A strip of rows of uncompressed planes: only those rows are read.
+            pages = self.pages[key[:-2] + (slice(None), slice(None))]
+            out = [self._rows(int(i), rows) for i in pages.ravel()]
+            return np.stack(out).reshape(pages.shape[:-2] + out[0].shape)
+        import dask
+
+        with dask.config.set(scheduler="synchronous"):
+            return np.asarray(self.image.data[key])
+
+    def _contiguous(self) -> bool:
+        page = self.tif.series[self.image.series].pages[0].keyframe
+        return bool(page.is_contiguous) and page.compression == 1 and page.dtype.kind in "uif"
+
+    def _rows(self, index: int, rows: slice) -> np.ndarray:
+        page = self.tif.series[self.image.series].pages[index]
+        key = page.keyframe
+        dtype = key.dtype.newbyteorder(self.tif.byteorder)
+        row_bytes = int(key.shape[-1]) * dtype.itemsize
+        handle = self.tif.filehandle
+        with handle.lock:
+            handle.seek(page.dataoffsets[0] + rows.start * row_bytes)
+            data = handle.read((rows.stop - rows.start) * row_bytes)
+        return np.frombuffer(data, dtype).reshape(rows.stop - rows.start, key.shape[-1]).astype(key.dtype)
 
 
 # Files recently read by blocks, most recent last; `stamp` (modification time, size) is part
@@ -624,14 +753,25 @@ def read_provenance(path) -> dict | None:
     return None
 
 
+def ome_zarr_writer():
+    """The ome_zarr.writer module, imported without the deprecation warning its import emits
+    (a default argument built from a deprecated class), which users cannot act on."""
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        from ome_zarr import writer
+    return writer
+
+
 def write_ome_zarr(path, image: Image, *, provenance: dict | None = None, chunks=None) -> Path:
     """Write `image` as an OME-Zarr (NGFF) folder atomically, one resolution level.
 
     Dask arrays are written block by block (in parallel, by dask).
     """
     import zarr
-    from ome_zarr.writer import write_image
 
+    write_image = ome_zarr_writer().write_image
     path = Path(path)
     axes = [{"name": a.lower(), "type": {"T": "time", "C": "channel"}.get(a, "space")} for a in image.axes]
     scale = {a.lower(): float(image.pixel_size.get(a, 1.0)) for a in image.axes}

@@ -154,13 +154,20 @@ def _summary(rows: list, channel: str | None) -> str:
     return text
 
 
-def write_comparison(comparison: Comparison, outdir) -> dict:
-    """Write compare.json and compare.csv into `outdir` (atomically); their paths by kind."""
-    from ..io.atomic import write_text_atomic
+def comparison_texts(comparison: Comparison) -> dict:
+    """The table as files: ``{"compare.json": text, "compare.csv": text}``."""
+    return {"compare.json": json.dumps(comparison.to_dict(), indent=2, allow_nan=False) + "\n",
+            "compare.csv": comparison.to_csv()}
+
+
+def write_comparison(comparison: Comparison, outdir, extra: dict | None = None) -> dict:
+    """Write compare.json, compare.csv and the `extra` files (``{name: bytes or text}``, e.g. plots)
+    into `outdir`, all or none: each is complete before any is renamed into place. Returns the
+    table's paths by kind."""
+    from ..io.atomic import write_files_atomic
 
     outdir = Path(outdir)
+    files = {**comparison_texts(comparison), **(extra or {})}
     outdir.mkdir(parents=True, exist_ok=True)
-    paths = {"json": outdir / "compare.json", "csv": outdir / "compare.csv"}
-    write_text_atomic(paths["json"], json.dumps(comparison.to_dict(), indent=2, allow_nan=False) + "\n")
-    write_text_atomic(paths["csv"], comparison.to_csv())
-    return paths
+    write_files_atomic({outdir / name: data for name, data in files.items()})
+    return {"json": outdir / "compare.json", "csv": outdir / "compare.csv"}

@@ -194,6 +194,8 @@ def _read_toml(path: Path) -> dict:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"{path}: not valid TOML ({exc}); fix the file") from None
+    except RecursionError:
+        raise InputError(f"{path}: tables or arrays nested too deeply to read; fix the file") from None
 
 
 def _table(value, where: str) -> dict:
@@ -254,6 +256,9 @@ def _grid(value, path: Path) -> spectra.Grid:
     step = _number(table, "step", where, default=spectra.DEFAULT_STEP_NM, upper=10.0)
     if stop <= start:
         raise InputError(f"{where}: stop must be above start")
+    if step < spectra.MIN_STEP_NM:
+        raise InputError(f"{where}: step {step:g} nm is finer than {spectra.MIN_STEP_NM:g} nm; spectra are not "
+                         "known that finely, give a larger step")
     return spectra.Grid(start, stop, step)
 
 

@@ -52,6 +52,9 @@ from ..errors import InputError, read_user_text
 # optics, ultraviolet to near infrared (common practice).
 MIN_NM, MAX_NM = 200.0, 1200.0
 DEFAULT_STEP_NM = 0.5
+# The finest wavelength grid accepted: finer steps only cost memory (common practice: published
+# spectra are tabulated every 0.5-1 nm).
+MIN_STEP_NM = 0.01
 # Units a curve may be stated in; the first four are the description's own.
 NATIVE_UNITS = ("relative", "photons", "qe", "transmission")
 UNITS = NATIVE_UNITS + ("energy", "radiant_sensitivity")
@@ -119,12 +122,13 @@ def read_spectrum_csv(path, *, transmission: bool = False) -> Spectrum:
     path = Path(path)
     text = read_user_text(path, "spectrum file", "give a two-column text CSV", encoding="utf-8-sig")
     rows = []
+    first = _first_line(text)  # once: calling it per line made reading quadratic in the row count
     for number, line in enumerate(text.splitlines(), start=1):
         line = line.strip()
         if not line or line.startswith("#"):
             continue
         fields = [f for f in re.split(r"[,;\t ]+", line) if f]
-        if number == _first_line(text) and not all(_is_number(f) for f in fields):
+        if number == first and not all(_is_number(f) for f in fields):
             continue  # the optional header line
         if len(fields) != 2:
             raise InputError(f"{path}: line {number} has {len(fields)} columns; give wavelength (nm) and value")

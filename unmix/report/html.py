@@ -12,12 +12,10 @@ from __future__ import annotations
 import base64
 import html
 import io
-import json
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import InputError, read_user_text
 from ..matrix import BleedThroughMatrix
 from ..coloc.verdict import VERDICTS
 
@@ -100,22 +98,10 @@ def _table(header, rows) -> str:
 
 
 def load_coloc_results(path) -> list[dict]:
-    """The records of a coloc JSON file (one result, or ``{"results": [...]}``)."""
-    path = Path(path)
-    try:
-        data = json.loads(read_user_text(path, "coloc file", "give the JSON written by unmix coloc --json"))
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{path}: not valid JSON (line {exc.lineno}); give the file written by unmix coloc --json") from None
-    records = data.get("results") if isinstance(data, dict) and "results" in data else [data]
-    if not isinstance(records, list) or not all(isinstance(r, dict) and "pair" in r and "verdict" in r and
-                                                "before" in r and "after" in r for r in records):
-        raise InputError(f"{path}: not a coloc result (pair, before, after, verdict); give the file written by "
-                         "unmix coloc --json")
-    for record in records:
-        if record["verdict"] not in VERDICTS:
-            raise InputError(f"{path}: unknown verdict {record['verdict']!r}; give the file written by unmix coloc")
-        record.setdefault("source", str(path))
-    return records
+    """The checked records of a coloc JSON file (see :func:`unmix.coloc.records.load_records`)."""
+    from ..coloc.records import load_records
+
+    return load_records(path)
 
 
 def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: BleedThroughMatrix | None = None,

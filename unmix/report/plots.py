@@ -2,7 +2,9 @@
 
 Every function returns a matplotlib Figure; :func:`save_png` writes one
 atomically. Verdicts are told apart by marker shape and text as well as by
-colour, so that no reading depends on telling red from green.
+colour, so that no reading depends on telling red from green. Names from
+users' files (labels, channels) are drawn as plain text (:func:`plain`):
+matplotlib would read text between two ``$`` as mathematics and fail on it.
 """
 
 from __future__ import annotations
@@ -20,11 +22,6 @@ VERDICT_STYLE = {
 }
 
 
-def _plain(text) -> str:
-    """Text that matplotlib shows as it is (a "$" would start mathematical notation)."""
-    return str(text).replace("$", r"\$")
-
-
 def _pyplot():
     import matplotlib
 
@@ -34,15 +31,47 @@ def _pyplot():
     return plt
 
 
+def plain(name, longest: int = 60) -> str:
+    """A user's name as matplotlib draws it literally: every ``$`` escaped, and cut to `longest`
+    characters (a name of thousands would squeeze the plot to nothing)."""
+    name = str(name)
+    if len(name) > longest:
+        name = name[:longest - 3] + "..."
+    return name.replace("$", r"\$")
+
+
+def png_bytes(figure) -> bytes:
+    """`figure` rendered as PNG (then closed)."""
+    import io
+
+    buffer = io.BytesIO()
+    try:
+        figure.savefig(buffer, format="png", dpi=110, bbox_inches="tight")
+    finally:
+        _pyplot().close(figure)
+    return buffer.getvalue()
+
+
 def save_png(figure, path) -> Path:
-    """Write `figure` as PNG atomically and close it."""
-    from ..io.atomic import atomic_output
+    """Write `figure` as PNG atomically and close it (rendered before anything is written)."""
+    from ..io.atomic import write_files_atomic
 
     path = Path(path)
-    with atomic_output(path) as tmp:
-        figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
-    _pyplot().close(figure)
+    write_files_atomic({path: png_bytes(figure)})
     return path
+
+
+def comparison_pngs(measured, predicted, comparison, description=None) -> dict:
+    """The figures of a comparison as PNG files, ``{name: bytes}``: the matrices side by side,
+    measured against predicted and (with a description) the spectra."""
+    from ..optics.comparison import aligned_prediction
+
+    pngs = {"compare-matrices.png": png_bytes(matrices_figure(measured, aligned_prediction(measured, predicted,
+                                                                                           "compare"))),
+            "compare-scatter.png": png_bytes(comparison_figure(comparison))}
+    if description is not None:
+        pngs["compare-spectra.png"] = png_bytes(spectra_figure(description))
+    return pngs
 
 
 def spectra_figure(description):
@@ -63,7 +92,7 @@ def spectra_figure(description):
         if channel.dichroic is not None:
             axis.plot(nm, channel.dichroic(nm), "k--", lw=0.8, label="dichroic (transmission)")
         for i, (name, values) in enumerate(emission.items()):
-            axis.plot(nm, values, color=colours(i), lw=1.4, label=name)
+            axis.plot(nm, values, color=colours(i), lw=1.4, label=plain(name))
         source = channel.source
         if source.line_nm is not None:
             axis.axvline(source.line_nm, color="k", lw=1.5, ls=":", label=f"excitation {source.line_nm:g} nm")
@@ -71,7 +100,7 @@ def spectra_figure(description):
             power = source.spectrum(nm)
             axis.plot(nm, power / power.max(), color="k", lw=1.0, ls=":", label="excitation source")
         axis.set_ylim(0, 1.05)
-        axis.set_ylabel(channel.name, rotation=0, ha="right", va="center")
+        axis.set_ylabel(plain(channel.name), rotation=0, ha="right", va="center")
         axis.set_yticks([0, 0.5, 1])
     axes[0, 0].legend(fontsize=7, ncol=4, loc="lower center", bbox_to_anchor=(0.5, 1.02))
     axes[-1, 0].set_xlabel("wavelength (nm)")
@@ -89,8 +118,8 @@ def matrices_figure(measured, predicted_values: np.ndarray):
         for (c, k), value in np.ndenumerate(values):
             axis.text(k, c, f"{value:.3f}", ha="center", va="center", fontsize=8,
                       color="white" if value < 0.6 * top else "black")
-        axis.set_xticks(range(len(measured.labels)), measured.labels, rotation=30, ha="right")
-        axis.set_yticks(range(len(measured.channels)), measured.channels)
+        axis.set_xticks(range(len(measured.labels)), [plain(n) for n in measured.labels], rotation=30, ha="right")
+        axis.set_yticks(range(len(measured.channels)), [plain(n) for n in measured.channels])
         axis.set_title(title)
     figure.colorbar(image, ax=axes, shrink=0.8, label="coefficient")
     return figure
@@ -120,7 +149,7 @@ def comparison_figure(comparison):
                       ms=7, capsize=2, label=verdict)
         for r, xi, yi in zip(rows, x, y):
             if verdict in ("higher", "lower"):
-                axis.annotate(f"{r['label']} in {r['channel']}", (xi, yi), fontsize=7, xytext=(4, 4),
+                axis.annotate(f"{plain(r['label'])} in {plain(r['channel'])}", (xi, yi), fontsize=7, xytext=(4, 4),
                               textcoords="offset points")
     axis.axvspan(low, comparison.detection_floor, color="0.95", zorder=-1)
     axis.set_xscale("log")
@@ -143,7 +172,7 @@ def coloc_histograms(before_pixels, after_pixels, result):
 
     plt = _pyplot()
     figure, axes = plt.subplots(1, 2, figsize=(10.5, 4.8), layout="constrained")
-    a_label, b_label = result.pair
+    a_label, b_label = (plain(name) for name in result.pair)
     for axis, (a, b), coefficients, title in (
             (axes[0], before_pixels, result.before, "before: primary channels, background subtracted"),
             (axes[1], after_pixels, result.after, "after: least-squares abundances")):
@@ -202,7 +231,7 @@ def depth_profile_figure(record: dict):
     axis.axhline(record.get("min_r", 0.1), color="#999999", lw=0.8, ls=":", label="smallest r that counts")
     axis.set_xlabel("plane")
     axis.set_ylabel("Pearson r")
-    axis.set_title(_plain(f"{record['pair'][0]} and {record['pair'][1]} by depth: {record['verdict']}"), fontsize=10)
+    axis.set_title(plain(f"{record['pair'][0]} and {record['pair'][1]} by depth: {record['verdict']}"), fontsize=10)
     axis.legend(fontsize=7, loc="best")
     return figure
 
@@ -220,12 +249,12 @@ def time_figure(summary: dict):
     top.plot(frames, corrected, "o-", color="#0072B2", label="after, noise-corrected r")
     top.set_ylabel("Pearson r")
     top.legend(fontsize=7, loc="best")
-    top.set_title(_plain(f"{summary['pair'][0]} and {summary['pair'][1]} over time"), fontsize=10)
+    top.set_title(plain(f"{summary['pair'][0]} and {summary['pair'][1]} over time"), fontsize=10)
     for (label, bleaching), colour in zip(summary["bleaching"].items(), ("#D55E00", "#009E73")):
         series = np.array([np.nan if v is None else v for v in bleaching["mean_signal"]], dtype=float)
         relative = series / series[0] if series.size and series[0] > 0 else series
         bottom.plot(frames, relative, "o-", color=colour,
-                    label=_plain(label) + (" (flagged)" if bleaching["flagged"] else ""))
+                    label=plain(label) + (" (flagged)" if bleaching["flagged"] else ""))
     bottom.axhline(1 - summary.get("bleach_limit", 0.2), color="#999999", lw=0.8, ls=":", label="bleaching limit")
     bottom.set_xlabel("time point")
     bottom.set_ylabel("signal / first")
