@@ -49,13 +49,16 @@ def test_3d_coefficients_against_scikit_image_and_scipy():
     assert coloc.coefficients(a, b, mask, rounds=0).thresholds == pytest.approx(as_plane.thresholds)
 
 
-def test_same_xy_shift_on_every_plane_equals_np_roll_per_plane():
+@pytest.mark.parametrize("masked", [True, False])
+def test_same_xy_shift_on_every_plane_equals_np_roll_per_plane(masked):
     # Every plane shifted by the same (dy, dx), no wrap between planes: numpy.roll per plane, then one
-    # Pearson r over all voxels (numpy.corrcoef).
+    # Pearson r over all voxels (numpy.corrcoef). A partial mask and the whole plane take different
+    # paths through the Fourier sums.
     a, b = _independent_stack(2, (5, 32, 40))
     b = b + 0.4 * a
     mask = np.ones(a.shape, bool)
-    mask[:, :4] = False
+    if masked:
+        mask[:, :4] = False
     spectra, moments = Spectra(a.shape[1:]), Moments()
     for z in range(a.shape[0]):
         spectra.add(a[z], b[z], mask[z])
@@ -280,3 +283,32 @@ def test_depth_and_time_figures_draw(tmp_path):
                "bleaching": {"A$x^$": {"mean_signal": [100.0, 80.0, 60.0], "flagged": True},
                              "B": {"mean_signal": [50.0, 50.0, 49.0], "flagged": False}}}
     assert save_png(time_figure(summary), tmp_path / "time.png").stat().st_size > 0
+
+
+def test_compiled_kernels_stay_inside_their_arrays(tmp_path):
+    # numba does not check indices unless asked (NUMBA_BOUNDSCHECK=1, numba documentation): run the
+    # colocalization of a plane and of a stack, with and without a mask, in a fresh process that checks
+    # every index (and compiles afresh, in its own cache folder).
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = """
+import sys
+sys.path.insert(0, {tests!r})
+import numpy as np
+from pair_scenes import measured_matrix, pair_scene
+from unmix.coloc.verdict import analyse_pair
+for shape in ((48, 48), (3, 32, 32)):
+    scene = pair_scene(1, r=0.3, shape=shape, psf_sigma=1.5)
+    matrix = measured_matrix(scene, 1)
+    mask = np.ones(shape, bool)
+    mask[..., :5] = False
+    for region in (None, mask):
+        analyse_pair(scene.raw, matrix, ("A", "B"), rounds=19, mask=region)
+print("ok")
+""".format(tests=str(Path(__file__).parent))
+    env = {**os.environ, "NUMBA_BOUNDSCHECK": "1", "NUMBA_CACHE_DIR": str(tmp_path / "cache")}
+    run = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, env=env, timeout=900)
+    assert run.returncode == 0 and run.stdout.strip().endswith("ok"), run.stderr[-2000:]

@@ -177,13 +177,16 @@ class ChannelSums:
         self.n = total
         self.variance_sum += variance.sum(axis=1)
 
-    def add_plane(self, signal: np.ndarray, variance: np.ndarray, mask: np.ndarray) -> None:
-        """Add the masked pixels of a plane (C, Y, X), in one compiled pass."""
+    def add_plane(self, signal: np.ndarray, variance: np.ndarray, mask: np.ndarray,
+                  reference: np.ndarray | None = None) -> None:
+        """Add the masked pixels of a plane (C, Y, X), in one compiled pass; the sums are taken about
+        `reference` (a point near the data, for their precision; default their own mean)."""
         from .plane_pass import channel_sums
 
         if not mask.any():
             return
-        reference = signal[:, mask].mean(axis=1) if self.n == 0 else self.mean
+        if reference is None:
+            reference = signal[:, mask].mean(axis=1) if self.n == 0 else self.mean
         c = signal.shape[0]
         sums = channel_sums(np.ascontiguousarray(signal, dtype=np.float64),
                             np.ascontiguousarray(variance, dtype=np.float64), mask, np.asarray(reference, float))
@@ -228,9 +231,9 @@ class NoiseSums:
 
     _PAIRS = ((0, 0), (1, 1), (0, 1))  # index 0: aa, 1: bb, 2: ab
 
-    def __init__(self, rows: np.ndarray):
+    def __init__(self, rows: np.ndarray, reference: np.ndarray | None = None):
         self.rows = np.asarray(rows, dtype=np.float64)
-        self.reference = None
+        self.reference = None if reference is None else np.asarray(reference, dtype=np.float64)
         self.n = 0
         self.u = np.zeros(2)                # sum u
         self.g = np.zeros(3)                # sum g_r

@@ -204,3 +204,51 @@ def channel_sums(signal, variance, mask, reference):
                 for d in range(n_channels):
                     out[1 + n_channels + c * n_channels + d] += s[c] * s[d]
     return out
+
+
+@njit(cache=True, nogil=True)
+def spectral_inputs(a, b, mask, out):
+    """The planes whose Fourier transforms the shift sums need, into `out` (2, 3 or 4, Y, X): A inside the
+    mask (0 elsewhere), B, then B^2 and B inside the mask as far as `out` has planes; non-finite values
+    as 0."""
+    with_bb = out.shape[0] > 2
+    with_mb = out.shape[0] > 3
+    for y in range(a.shape[0]):
+        for x in range(a.shape[1]):
+            vb = b[y, x]
+            if not np.isfinite(vb):
+                vb = 0.0
+            va = a[y, x]
+            inside = mask[y, x] and np.isfinite(va)
+            out[0, y, x] = va if inside else 0.0
+            out[1, y, x] = vb
+            if with_bb:
+                out[2, y, x] = vb * vb
+            if with_mb:
+                out[3, y, x] = vb if mask[y, x] else 0.0
+
+
+@njit(cache=True, nogil=True)
+def accumulate_spectra(f_ma, f_b, f_bb, f_m, cross_ab, cross_mb, cross_mbb):
+    """cross_ab += conj(F(m a)) F(b); cross_mb += conj(F(m)) F(b); cross_mbb += conj(F(m)) F(b^2)."""
+    for y in range(f_ma.shape[0]):
+        for x in range(f_ma.shape[1]):
+            m = np.conj(f_m[y, x])
+            cross_ab[y, x] += np.conj(f_ma[y, x]) * f_b[y, x]
+            cross_mb[y, x] += m * f_b[y, x]
+            cross_mbb[y, x] += m * f_bb[y, x]
+
+
+@njit(cache=True, nogil=True)
+def unmix_two(rows, signal):
+    """Two least-squares abundances (2, Y, X) of a plane (C, Y, X): rows (2, C) times each pixel."""
+    out = np.zeros((2, signal.shape[1], signal.shape[2]))
+    for c in range(signal.shape[0]):
+        r0 = rows[0, c]
+        r1 = rows[1, c]
+        for y in range(signal.shape[1]):
+            for x in range(signal.shape[2]):
+                s = signal[c, y, x]
+                out[0, y, x] += r0 * s
+                out[1, y, x] += r1 * s
+    return out

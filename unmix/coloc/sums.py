@@ -29,7 +29,7 @@ import numpy as np
 
 from . import statistics
 
-# Spearman's rho is exact up to this many voxels, from a seeded uniform subsample above (its standard
+# Spearman's rho is exact up to this many voxels, from a seeded systematic subsample above (its standard
 # error is then about 1 / sqrt(SPEARMAN_SAMPLE), far below what matters; ranking all voxels of a large
 # stack would cost more than everything else together).
 SPEARMAN_SAMPLE = 2**18
@@ -99,28 +99,46 @@ class Spectra:
         self.length_planes = 0
 
     @staticmethod
-    def mask_spectrum(mask: np.ndarray) -> np.ndarray:
-        """F(m) of a plane's mask, to share between the pairs of one region."""
+    def mask_spectrum(mask: np.ndarray) -> np.ndarray | None:
+        """F(m) of a plane's mask, to share between the pairs of one region (None for a full mask, which
+        needs none)."""
         from scipy import fft
 
-        return fft.rfft2(mask.astype(np.float64), workers=-1)
+        return None if mask.all() else fft.rfft2(mask.astype(np.float64), workers=-1)
 
     def add(self, a: np.ndarray, b: np.ndarray, mask: np.ndarray, f_m: np.ndarray | None = None) -> None:
+        """Add one plane. A mask covering the whole plane has the spectrum N at zero frequency only, so
+        the sums that involve it need no transform of their own."""
         from scipy import fft
 
+        from .plane_pass import accumulate_spectra, spectral_inputs
+
+        length = self.length_planes < LENGTH_PLANES
+        if mask.all():
+            planes = np.empty((2,) + self.shape)
+            spectral_inputs(a, b, mask, planes)
+            f_ma, f_b = fft.rfft2(planes, workers=-1)
+            n = float(mask.size)
+            self.cross_ab += np.conj(f_ma) * f_b
+            self.cross_mb[0, 0] += n * f_b[0, 0]
+            self.cross_mbb[0, 0] += n * float(np.sum(planes[1] ** 2))
+            if length:
+                self.length_planes += 1
+                for name, f in (("ma", f_ma), ("mb", f_b)):
+                    self.power[name] += (f * np.conj(f)).real
+                    self.mixed[name][0, 0] += n * f[0, 0]
+                self.power["m"][0, 0] += n * n
+            return
         if f_m is None:
             f_m = self.mask_spectrum(mask)
-        b = np.where(np.isfinite(b), b, 0.0)
-        length = self.length_planes < LENGTH_PLANES
-        planes = [np.where(mask, a, 0.0), b, b * b] + ([b * mask] if length else [])
-        f_ma, f_b, f_bb, *f_mb = fft.rfft2(np.stack(planes), workers=-1)
-        conj_m = np.conj(f_m)
-        self.cross_ab += np.conj(f_ma) * f_b
-        self.cross_mb += conj_m * f_b
-        self.cross_mbb += conj_m * f_bb
+        planes = np.empty((4 if length else 3,) + self.shape)
+        spectral_inputs(a, b, mask, planes)
+        spectra = fft.rfft2(planes, workers=-1)
+        accumulate_spectra(spectra[0], spectra[1], spectra[2], f_m, self.cross_ab, self.cross_mb, self.cross_mbb)
         if length:
             self.length_planes += 1
-            for name, f in (("ma", f_ma), ("mb", f_mb[0])):
+            conj_m = np.conj(f_m)
+            for name, f in (("ma", spectra[0]), ("mb", spectra[3])):
                 self.power[name] += (f * np.conj(f)).real
                 self.mixed[name] += f * conj_m
             self.power["m"] += (f_m * conj_m).real
@@ -221,10 +239,12 @@ class PairSums:
         self.low_b, self.high_b = min(self.low_b, sums[k.BMIN]), max(self.high_b, sums[k.BMAX])
         self.integer = self.integer and bool(sums[k.INTEGER])
         if self.rate > 0:
-            keep = mask & np.isfinite(a) & np.isfinite(b)
-            if self.rate < 1:
-                keep &= self.rng.random(keep.shape) < self.rate
-            self.sample.append(np.stack([a[keep], b[keep]]))
+            step = max(1, int(round(1 / self.rate)))
+            # A systematic sample: every step-th pixel in raster order, from a seeded start.
+            start = int(self.rng.integers(step)) if step > 1 else 0
+            flat_a, flat_b, flat_m = a.ravel()[start::step], b.ravel()[start::step], mask.ravel()[start::step]
+            keep = flat_m & np.isfinite(flat_a) & np.isfinite(flat_b)
+            self.sample.append(np.stack([flat_a[keep], flat_b[keep]]))
 
     def finish_first(self, thresholds=None, method: str = "costes") -> None:
         if self.moments.n < 2:
@@ -315,8 +335,8 @@ class PairSums:
             sample = np.concatenate(self.sample, axis=1)
             spearman = statistics.spearman(sample[0], sample[1])
             if 0 < self.rate < 1:
-                note = "; ".join(filter(None, [note, f"Spearman's rho from a seeded sample of {sample.shape[1]} "
-                                                     "voxels"]))
+                note = "; ".join(filter(None, [note, f"Spearman's rho from a systematic sample of "
+                                                     f"{sample.shape[1]} voxels"]))
         return statistics.Coefficients(
             pearson=r, spearman=spearman, manders_m1=ratio(m1_b, sum_a), manders_m2=ratio(m2_a, sum_b),
             thresholds=self.thresholds, threshold_method=self.method,

@@ -66,6 +66,7 @@ from ..matrix import BleedThroughMatrix
 from . import statistics as coloc
 from .corrected import (NOISE_MODEL_RELATIVE_SD, ChannelSums, CorrectedCorrelation, NoiseSums, corrected_from_sums,
                         unmixing_rows)
+from .plane_pass import first_sums, unmix_two
 from .sums import Moments, PairSums, Spectra
 
 VERDICTS = {
@@ -259,13 +260,18 @@ class ImageSource:
 
     def plane(self, z: int) -> Plane:
         raw = np.asarray(self.raw[:, z])
-        signal = raw.astype(np.float64) - self.background[:, None, None]
+        signal = raw.astype(np.float64)
+        signal -= self.background[:, None, None]
         saturated = np.zeros(raw.shape[1:], bool)
         if self.levels is not None:
             for c in range(raw.shape[0]):
                 saturated |= raw[c] >= self.levels[c]
-        valid = ~saturated & np.all(np.isfinite(raw), axis=0)
-        unflattened = np.where(valid, signal, 0.0)
+        valid = ~saturated
+        if raw.dtype.kind == "f":
+            valid &= np.all(np.isfinite(raw), axis=0)
+        unflattened = signal
+        if not valid.all():
+            unflattened[:, ~valid] = 0.0
         signal = unflattened if self.flats is None else unflattened / self.flats
         return Plane(signal, valid, saturated, unflattened, self.noise, self.flats)
 
@@ -428,26 +434,32 @@ def judge_pair(source: ImageSource, pair: tuple[str, str], *, mask=None, rounds:
              for offset, name in enumerate(("before", "after"))}
     plain_after = PairSums(None)  # plain r and Manders only: no Spearman, no shifts
     channel_planes = [ChannelSums(n_channels) for _ in range(n_planes)]
-    before_noise, after_noise = [NoiseSums(selection) for _ in range(n_planes)], [NoiseSums(after_rows) for _ in
-                                                                                  range(n_planes)]
-    before_planes = [Moments() for _ in range(n_planes)]
+    before_noise, after_noise, before_planes = [], [], [Moments() for _ in range(n_planes)]
+    reference = None  # one point near the data for every per-plane sum (their precision)
     saturated = 0
 
     def planes():
         for z in range(n_planes):
             plane = source.plane(z)
             region = plane.valid if regions is None else plane.valid & regions[z]
-            yield z, plane, region, (plane.signal[ca], plane.signal[cb]), tuple(
-                np.tensordot(after_rows, plane.signal, axes=(1, 0)))
+            yield z, plane, region, (plane.signal[ca], plane.signal[cb]), tuple(unmix_two(after_rows, plane.signal))
 
     for z, plane, region, before, after in planes():
         f_m = Spectra.mask_spectrum(region)  # one region: its mask's spectrum serves both sides
         sides["before"].add_first(*before, region, f_m)
         sides["after"].add_first(*after, region, f_m)
-        channel_planes[z].add_plane(plane.signal, plane.variance, region)
-        before_noise[z].add_plane(plane.signal, plane.variance, region)
-        after_noise[z].add_plane(plane.signal, plane.variance, region)
-        before_planes[z].add(before[0][region], before[1][region])
+        if reference is None and region.any():
+            sample = region[::4, ::4]
+            reference = plane.signal[:, ::4, ::4][:, sample].mean(axis=1) if sample.any() else \
+                plane.signal[:, region].mean(axis=1)
+        before_noise.append(NoiseSums(selection, None if reference is None else selection @ reference))
+        after_noise.append(NoiseSums(after_rows, None if reference is None else after_rows @ reference))
+        if reference is not None:
+            channel_planes[z].add_plane(plane.signal, plane.variance, region, reference)
+            before_noise[z].add_plane(plane.signal, plane.variance, region)
+            after_noise[z].add_plane(plane.signal, plane.variance, region)
+            before_planes[z].add_sums(first_sums(*before, region, reference[ca], reference[cb]),
+                                      (reference[ca], reference[cb]))
         saturated += int(np.count_nonzero(plane.saturated if regions is None else plane.saturated & regions[z]))
     for sums in sides.values():
         sums.finish_first(thresholds, threshold_method)
