@@ -105,6 +105,10 @@ def _coloc_files(folder: Path, shape) -> None:
                        primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                        matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.full(3, 100.0),
                        background_source="dark", saturation=np.full(3, 4095.0)).save(folder / "coloc_matrix.json")
+    side = {"pearson": 0.5, "p_value": 0.001, "thresholds": [1.0, 2.0]}
+    record = {"pair": ["Cobaltin", "Emberin"], "before": side, "after": side, "verdict": "persists"}
+    (folder / "old_coloc.json").write_text(json.dumps(record))  # written before coloc recorded its matrix
+    (folder / "foreign_coloc.json").write_text(json.dumps({**record, "matrix_sha256": "0" * 64}))
     tifffile.imwrite(folder / "small_mask.tif", np.ones((5, 5), np.uint8))
     tifffile.imwrite(folder / "empty_mask.tif", np.zeros(shape, np.uint8))
     tifffile.imwrite(folder / "stack.ome.tif", np.zeros((2, 3, 8, 8), np.uint16), ome=True,
@@ -114,6 +118,11 @@ def _coloc_files(folder: Path, shape) -> None:
 def _coloc(files, *extra, image="cob"):
     folder = Path(files["out"]).parent
     return ["coloc", files[image], "--matrix", folder / "coloc_matrix.json", *extra]
+
+
+def _report(files, *extra):
+    folder = Path(files["out"]).parent
+    return ["report", "--matrix", folder / "coloc_matrix.json", *extra, "-o", folder / "report.html"]
 
 
 def _descriptions(folder: Path) -> None:
@@ -228,8 +237,12 @@ BAD_INPUT = {
     "matrix interval excludes its value": (lambda f: _apply(f, "ci_matrix"), "interval"),
     "matrix non-finite value": (lambda f: _apply(f, "nan_matrix"), "nan_matrix.json"),
     "apply complex pixels": (lambda f: _apply(f, "coloc_matrix", image="complex"), "complex64"),
+    "report coloc of another matrix": (lambda f: _report(f, "--coloc", f["foreign_coloc"]), "foreign_coloc.json"),
+    "report coloc without its matrix": (lambda f: _report(f, "--coloc", f["old_coloc"]), "old_coloc.json"),
+    "report sample missing": (lambda f: _report(f, "--sample", "/no/such/sample.tif"), "/no/such/sample.tif"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
+    "compare swapped controls": (lambda f: _compare_pair(f, swapped=True), "swapped controls"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
                              "notes.tif"),
 }
@@ -239,14 +252,17 @@ def _predict(files, variant):
     return ["predict", "--config", Path(files["out"]).parent / f"{variant}.toml", "-o", files["out"]]
 
 
-def _compare_pair(files, labels=False):
+def _compare_pair(files, labels=False, swapped=False):
     folder = Path(files["out"]).parent
     measured = BleedThroughMatrix(kind="measured", channels=("g", "o"), labels=("A",), primary={"A": "g"},
                                   matrix=np.array([[1.0], [0.2]]), ci95_low=np.array([[1.0], [0.1]]),
                                   ci95_high=np.array([[1.0], [0.3]]), background=np.zeros(2), background_source="dark")
-    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels else ("g", "r"),
+    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels or swapped else ("g", "r"),
                                    labels=("Z",) if labels else ("A",), primary={"Z" if labels else "A": "g"},
                                    matrix=np.array([[1.0], [0.2]]))
+    if swapped:  # A's control was another label's: brightest in o, where A itself gives almost nothing
+        predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o"), labels=("A",), primary={"A": "o"},
+                                       matrix=np.array([[3e-6], [1.0]]))
     measured.save(folder / "measured.json")
     predicted.save(folder / "predicted.json")
     return ["compare", folder / "measured.json", folder / "predicted.json", "-o", folder / "cmp"]

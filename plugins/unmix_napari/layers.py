@@ -20,17 +20,6 @@ from .io import CHANNEL_NAMES, MATRIX_METADATA
 
 NONE = "(none)"
 SESSION_MATRIX = "measured in this session"
-# Colormaps for unmixed labels, in order (distinct hues, colour-blind safe first).
-LABEL_COLORMAPS = ("cyan", "magenta", "yellow", "green", "red", "blue", "bop orange", "gray")
-# Verdict -> (symbol, background colour): colour-blind-safe hues, each with its own symbol and words.
-VERDICT_LOOK = {
-    "bleed-through-only": ("✗", "#E69F00"),
-    "inflated": ("▼", "#F0E442"),
-    "persists": ("✓", "#56B4E9"),
-    "revealed": ("▲", "#CC79A7"),
-    "none": ("○", "#BBBBBB"),
-    "inconclusive": ("?", "#FFFFFF"),
-}
 
 
 @dataclass

@@ -7,7 +7,9 @@ from napari.layers import Image as ImageLayer
 from napari.layers import Labels as LabelsLayer
 from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout, QWidget
 
-from .layers import NONE, VERDICT_LOOK, LayerChoice, Worker, fill_table, guarded, layer_image, session
+from unmix.report.style import VERDICT_LOOK
+
+from .layers import NONE, LayerChoice, Worker, fill_table, guarded, layer_image, session
 
 
 class OverlapWidget(QWidget):
@@ -133,9 +135,9 @@ class OverlapWidget(QWidget):
 
         result, planes = payload
         self.result = result
-        symbol, colour = VERDICT_LOOK[result.verdict]
-        self.verdict.setText(f"{symbol}  {result.verdict}: {VERDICTS[result.verdict]}")
-        self.verdict.setStyleSheet(f"background-color: {colour}; color: black; font-weight: bold; "
+        look = VERDICT_LOOK[result.verdict]
+        self.verdict.setText(f"{look.symbol}  {look.heading} ({result.verdict}): {VERDICTS[result.verdict]}")
+        self.verdict.setStyleSheet(f"background-color: {look.colour}; color: black; font-weight: bold; "
                                    "border: 1px solid #333;")
 
         def value(x, digits=3):

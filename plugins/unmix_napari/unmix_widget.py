@@ -6,7 +6,9 @@ import numpy as np
 from qtpy.QtWidgets import (QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit, QPushButton, QSpinBox,
                             QWidget)
 
-from .layers import (LABEL_COLORMAPS, LayerChoice, Worker, chosen_matrix, guarded, layer_image, refresh_matrix_sources,
+from unmix.report.style import label_colour
+
+from .layers import (LayerChoice, Worker, chosen_matrix, guarded, layer_image, refresh_matrix_sources,
                      session)
 
 
@@ -99,7 +101,7 @@ class UnmixWidget(QWidget):
                     if hasattr(plane, "compute") else plane
                 high = float(np.nanpercentile(sample, 99.5)) if np.isfinite(sample).any() else 1.0
                 name = self._add_or_update(plane, label, {
-                    "colormap": LABEL_COLORMAPS[k % len(LABEL_COLORMAPS)], "blending": "additive",
+                    "colormap": label_colour(k)[0], "blending": "additive",
                     "contrast_limits": (0.0, max(high, 1e-6)),
                     "metadata": {"unmix_provenance": {"matrix_sha256": matrix.sha256(), "method": unmixer.method,
                                                       "source_layer": layer.name}}})

@@ -73,7 +73,7 @@ def run_compare(args) -> int:
     from ..matrix import load_matrix
     from ..optics.comparison import aligned_prediction, compare, write_comparison
     from ..report.plots import comparison_figure, matrices_figure, save_png, spectra_figure
-    from ..report.summary import table
+    from ..report.summary import comparison_rows, table
 
     measured = load_matrix(args.measured)
     predicted = load_matrix(args.predicted)
@@ -93,11 +93,7 @@ def run_compare(args) -> int:
     if description is not None:
         save_png(spectra_figure(description), outdir / "compare-spectra.png")
     if not args.quiet:
-        rows = [["channel", "label", "measured [95 % CI]", "predicted", "ratio", "verdict"]]
-        for r in comparison.coefficients:
-            rows.append([r["channel"], r["label"], f"{r['measured']:.4f} [{r['ci95'][0]:.4f}, {r['ci95'][1]:.4f}]",
-                         f"{r['predicted']:.4f}", "-" if r["ratio"] is None else f"{r['ratio']:.2f}", r["verdict"]])
-        print(table(rows))
+        print(table(comparison_rows(comparison)))
         print()
         print(comparison.summary)
         print(f"\nwrote {paths['json']}, {paths['csv']} and plots in {outdir}")

@@ -50,7 +50,7 @@ def run_demo(outdir, out=None) -> dict:
     for k, label in enumerate(matrix.labels):
         errors[label] = float(np.sqrt(np.mean((unmixed[k] - true_abundances[k]) ** 2)))
         print(f"  {label}: {errors[label]:.1f} (peak signal {true_abundances[k].max():.0f})", file=out)
-    comparison, compare_dir = _measured_versus_predicted(matrix, outdir, out)
+    comparison, compare_dir, description = _measured_versus_predicted(matrix, outdir, out)
     coloc_records = _colocalization(matrix, inputs["sample"], Path(result.output), truth["pairs"], outdir, out)
 
     from ..report.html import build_report, write_report
@@ -58,7 +58,8 @@ def run_demo(outdir, out=None) -> dict:
     predicted = load_matrix(outdir / "demo_predicted.json")
     report = write_report(outdir / "demo_report.html", build_report(
         matrix, matrix_path=matrix_path, predicted=predicted, predicted_path=outdir / "demo_predicted.json",
-        coloc_records=coloc_records, title="Demo: bleed-through and colocalization report (invented scenario)"))
+        coloc_records=coloc_records, samples=[inputs["sample"]], description=description,
+        description_path=description.path, title="Demo: bleed-through and colocalization report (invented scenario)"))
     print(f"\nMatrix:    {matrix_path}\nTable:     {csv_path}\nUnmixed:   {result.output}\n"
           f"Predicted: {outdir / 'demo_predicted.json'}\nCompared:  {compare_dir}\n"
           f"Coloc:     {outdir / 'coloc.json'}\nReport:    {report}", file=out)
@@ -93,7 +94,7 @@ def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdi
         print(f"  {pair[0]} / {pair[1]} ({role.replace('_', ' ')}): Pearson r {result.before.pearson:.3f} before, "
               f"{result.after.pearson:.3f} after: {result.verdict}", file=out)
     write_text_atomic(outdir / "coloc.json", json.dumps({"results": records}, indent=2, allow_nan=False) + "\n")
-    return records
+    return [{**record, "source": str(outdir / "coloc.json")} for record in records]
 
 
 def _measured_versus_predicted(matrix, outdir: Path, out):
@@ -101,6 +102,7 @@ def _measured_versus_predicted(matrix, outdir: Path, out):
     from ..optics.comparison import aligned_prediction, compare, write_comparison
     from ..optics.prediction import predict
     from ..report.plots import comparison_figure, matrices_figure, save_png, spectra_figure
+    from ..report.summary import comparison_rows, table
 
     scenario = load_scenario()
     description = scenario.described_optics()
@@ -113,9 +115,6 @@ def _measured_versus_predicted(matrix, outdir: Path, out):
     save_png(comparison_figure(comparison), compare_dir / "compare-scatter.png")
     save_png(spectra_figure(description), compare_dir / "compare-spectra.png")
     print("\nMeasured versus predicted from the instrument's description:", file=out)
-    for row in comparison.coefficients:
-        print(f"  {row['label']} in {row['channel']}: measured {row['measured']:.4f} "
-              f"[{row['ci95'][0]:.4f}, {row['ci95'][1]:.4f}], predicted {row['predicted']:.4f}: {row['verdict']}",
-              file=out)
-    print(f"  {comparison.summary}", file=out)
-    return comparison, compare_dir
+    print(table(comparison_rows(comparison)), file=out)
+    print(comparison.summary, file=out)
+    return comparison, compare_dir, description

@@ -14,6 +14,12 @@ def table(rows: list[list[str]]) -> str:
     return "\n".join(lines)
 
 
+def fixed(value: float, digits: int = 4) -> str:
+    """`value` with `digits` decimals; a value that rounds to zero prints as 0 (never -0.0000)."""
+    text = f"{value:.{digits}f}"
+    return "0" if float(text) == 0 else text
+
+
 def matrix_rows(matrix: BleedThroughMatrix) -> list[list[str]]:
     """One row per channel: its name, then each label's coefficient with its 95 % interval."""
     rows = []
@@ -24,10 +30,19 @@ def matrix_rows(matrix: BleedThroughMatrix) -> list[list[str]]:
             if matrix.primary[label] == channel:
                 cells.append("1 (primary)")
             elif matrix.ci95_low is not None:
-                cells.append(f"{value:.4f} [{matrix.ci95_low[c, k]:.4f}, {matrix.ci95_high[c, k]:.4f}]")
+                cells.append(f"{fixed(value)} [{fixed(matrix.ci95_low[c, k])}, {fixed(matrix.ci95_high[c, k])}]")
             else:
-                cells.append(f"{value:.4f}")
+                cells.append(fixed(value))
         rows.append(cells)
+    return rows
+
+
+def comparison_rows(comparison) -> list[list[str]]:
+    """Measured versus predicted: a header row, then one row per off-primary coefficient."""
+    rows = [["channel", "label", "measured [95 %]", "predicted", "ratio", "verdict"]]
+    for r in comparison.coefficients:
+        rows.append([r["channel"], r["label"], f"{fixed(r['measured'])} [{fixed(r['ci95'][0])}, {fixed(r['ci95'][1])}]",
+                     fixed(r["predicted"]), "-" if r["ratio"] is None else f"{r['ratio']:.2f}", r["verdict"]])
     return rows
 
 
