@@ -126,7 +126,7 @@ def test_broken_file_in_batch_others_finish(tmp_path, demo, demo_matrix, capsys)
 
 def _predicted(tmp_path):
     matrix = BleedThroughMatrix(kind="predicted", channels=("blue450", "green525", "orange600"),
-                                labels=("Cobaltin", "Fernlight"), primary={"Cobaltin": "blue450", "Fernlight": "green525"},
+                                labels=("Pondpetal", "Fernlight"), primary={"Pondpetal": "blue450", "Fernlight": "green525"},
                                 matrix=np.array([[1.0, 0.02], [0.12, 1.0], [0.03, 0.35]]))
     return matrix.save(tmp_path / "predicted.json")
 

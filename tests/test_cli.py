@@ -20,30 +20,30 @@ from unmix.matrix import BleedThroughMatrix
 def files(tmp_path, demo):
     """Demo controls plus damaged and odd files, in a scratch folder."""
     c = demo["controls"]
-    paths = {"cob": c["Cobaltin"][0], "cob2": c["Cobaltin"][1], "fern": c["Fernlight"][0],
+    paths = {"pond": c["Pondpetal"][0], "pond2": c["Pondpetal"][1], "fern": c["Fernlight"][0],
              "emb": c["Emberin"][0], "dark": demo["dark"], "unstained": demo["unstained"]}
-    data = Path(paths["cob"]).read_bytes()
+    data = Path(paths["pond"]).read_bytes()
     (tmp_path / "truncated.ome.tif").write_bytes(data[: len(data) // 3])
     (tmp_path / "notes.tif").write_text("these are not pixels\n")
     (tmp_path / "empty.tif").write_bytes(b"")
-    cob = tifffile.imread(paths["cob"])
-    tifffile.imwrite(tmp_path / "two_channels.ome.tif", cob[:2], ome=True,
+    pond = tifffile.imread(paths["pond"])
+    tifffile.imwrite(tmp_path / "two_channels.ome.tif", pond[:2], ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525"]}})
-    tifffile.imwrite(tmp_path / "renamed.ome.tif", cob, ome=True,
+    tifffile.imwrite(tmp_path / "renamed.ome.tif", pond, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["b", "g", "o"]}})
-    tifffile.imwrite(tmp_path / "flat.ome.tif", np.full_like(cob, 4095), ome=True,
+    tifffile.imwrite(tmp_path / "flat.ome.tif", np.full_like(pond, 4095), ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    nan = cob.astype(np.float32)
+    nan = pond.astype(np.float32)
     nan[0, 10, 10] = np.nan
     tifffile.imwrite(tmp_path / "nan.ome.tif", nan, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    saturated = cob.copy()
+    saturated = pond.copy()
     saturated[0][saturated[0] > 300] = 4095
     tifffile.imwrite(tmp_path / "saturated.ome.tif", saturated, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    tifffile.imwrite(tmp_path / "four_d.tif", np.stack([cob, cob]), photometric="minisblack")  # shape only, no axes
+    tifffile.imwrite(tmp_path / "four_d.tif", np.stack([pond, pond]), photometric="minisblack")  # shape only, no axes
     _descriptions(tmp_path)
-    _coloc_files(tmp_path, cob.shape[1:])
+    _coloc_files(tmp_path, pond.shape[1:])
     _odd_files(tmp_path)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
@@ -92,7 +92,7 @@ def _odd_files(folder: Path) -> None:
     (folder / "nan_matrix.json").write_text(json.dumps(good).replace('"matrix": [[1.0', '"matrix": [[NaN', 1))
 
 
-def _apply(files, matrix, image="cob"):
+def _apply(files, matrix, image="pond"):
     folder = Path(files["out"]).parent
     return ["apply", "--matrix", folder / f"{matrix}.json", files[image], "-o", folder / "unmixed"]
 
@@ -101,12 +101,12 @@ def _coloc_files(folder: Path, shape) -> None:
     """A matrix of the demo's channels and labels, and masks of the wrong size or empty."""
     values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
     BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
-                       labels=("Cobaltin", "Fernlight", "Emberin"),
-                       primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                       labels=("Pondpetal", "Fernlight", "Emberin"),
+                       primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                        matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.full(3, 100.0),
                        background_source="dark", saturation=np.full(3, 4095.0)).save(folder / "coloc_matrix.json")
     side = {"pearson": 0.5, "p_value": 0.001, "thresholds": [1.0, 2.0]}
-    record = {"pair": ["Cobaltin", "Emberin"], "before": side, "after": side, "verdict": "persists"}
+    record = {"pair": ["Pondpetal", "Emberin"], "before": side, "after": side, "verdict": "persists"}
     (folder / "old_coloc.json").write_text(json.dumps(record))  # written before coloc recorded its matrix
     (folder / "foreign_coloc.json").write_text(json.dumps({**record, "matrix_sha256": "0" * 64}))
     tifffile.imwrite(folder / "small_mask.tif", np.ones((5, 5), np.uint8))
@@ -115,7 +115,7 @@ def _coloc_files(folder: Path, shape) -> None:
                      metadata={"axes": "ZCYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
 
 
-def _coloc(files, *extra, image="cob"):
+def _coloc(files, *extra, image="pond"):
     folder = Path(files["out"]).parent
     return ["coloc", files[image], "--matrix", folder / "coloc_matrix.json", *extra]
 
@@ -170,31 +170,31 @@ BAD_INPUT = {
     "truncated tiff": (lambda f: _measure(f"A={f['truncated']}", extra=["-o", f["out"]]), "truncated"),
     "not an image": (lambda f: _measure(f"A={f['notes']}", extra=["-o", f["out"]]), "notes.tif"),
     "empty file": (lambda f: _measure(f"A={f['empty']}", extra=["-o", f["out"]]), "empty.tif"),
-    "channel count differs": (lambda f: _measure(f"A={f['cob']}", f"B={f['two_channels']}",
+    "channel count differs": (lambda f: _measure(f"A={f['pond']}", f"B={f['two_channels']}",
                                                  extra=["-o", f["out"]]), "two_channels"),
-    "channel names differ": (lambda f: _measure(f"A={f['cob']}", f"B={f['renamed']}",
+    "channel names differ": (lambda f: _measure(f"A={f['pond']}", f"B={f['renamed']}",
                                                 extra=["-o", f["out"]]), "renamed"),
     "no usable pixels": (lambda f: _measure(f"A={f['dark']}", extra=["-o", f["out"]]), "dark.ome.tif"),
     "all saturated": (lambda f: _measure(f"A={f['flat']}", extra=["-o", f["out"]]), "flat.ome.tif"),
     "saturated above limit": (lambda f: _measure(f"A={f['saturated']}", extra=["-o", f["out"]]), "saturated.ome.tif"),
     "nan without allow": (lambda f: _measure(f"A={f['nan']}", extra=["-o", f["out"]]), "--allow-nonfinite"),
-    "label twice": (lambda f: _measure(f"A={f['cob']}", f"A={f['fern']}", extra=["-o", f["out"]]), "given twice"),
-    "file twice": (lambda f: _measure(f"A={f['cob']}", f"B={f['cob']}", extra=["-o", f["out"]]), "given twice"),
-    "file twice in one label": (lambda f: _measure(f"A={f['cob']},{f['cob']}", extra=["-o", f["out"]]), "given twice"),
-    "output is an input": (lambda f: _measure(f"A={f['cob']}", extra=["-o", f["cob"]]), "also an input"),
-    "output folder missing": (lambda f: _measure(f"A={f['cob']}", extra=["-o", "/no/such/dir/m.json"]), "does not exist"),
-    "unknown primary channel": (lambda f: _measure(f"A={f['cob']}", extra=["--primary", "A=red700", "-o", f["out"]]), "red700"),
-    "primary for unknown label": (lambda f: _measure(f"A={f['cob']}", extra=["--primary", "Z=blue450", "-o", f["out"]]), "'Z'"),
-    "bad saturation": (lambda f: _measure(f"A={f['cob']}", extra=["--saturation", "lots", "-o", f["out"]]), "--saturation"),
-    "saturation count": (lambda f: _measure(f"A={f['cob']}", extra=["--saturation", "1,2", "-o", f["out"]]), "--saturation"),
-    "axes wrong length": (lambda f: _measure(f"A={f['cob']}", extra=["--axes", "ZCYX", "-o", f["out"]]), "--axes"),
-    "axes invalid": (lambda f: _measure(f"A={f['cob']}", extra=["--axes", "QYX", "-o", f["out"]]), "--axes"),
+    "label twice": (lambda f: _measure(f"A={f['pond']}", f"A={f['fern']}", extra=["-o", f["out"]]), "given twice"),
+    "file twice": (lambda f: _measure(f"A={f['pond']}", f"B={f['pond']}", extra=["-o", f["out"]]), "given twice"),
+    "file twice in one label": (lambda f: _measure(f"A={f['pond']},{f['pond']}", extra=["-o", f["out"]]), "given twice"),
+    "output is an input": (lambda f: _measure(f"A={f['pond']}", extra=["-o", f["pond"]]), "also an input"),
+    "output folder missing": (lambda f: _measure(f"A={f['pond']}", extra=["-o", "/no/such/dir/m.json"]), "does not exist"),
+    "unknown primary channel": (lambda f: _measure(f"A={f['pond']}", extra=["--primary", "A=red700", "-o", f["out"]]), "red700"),
+    "primary for unknown label": (lambda f: _measure(f"A={f['pond']}", extra=["--primary", "Z=blue450", "-o", f["out"]]), "'Z'"),
+    "bad saturation": (lambda f: _measure(f"A={f['pond']}", extra=["--saturation", "lots", "-o", f["out"]]), "--saturation"),
+    "saturation count": (lambda f: _measure(f"A={f['pond']}", extra=["--saturation", "1,2", "-o", f["out"]]), "--saturation"),
+    "axes wrong length": (lambda f: _measure(f"A={f['pond']}", extra=["--axes", "ZCYX", "-o", f["out"]]), "--axes"),
+    "axes invalid": (lambda f: _measure(f"A={f['pond']}", extra=["--axes", "QYX", "-o", f["out"]]), "--axes"),
     "no axes for 4-D": (lambda f: _measure(f"A={f['four_d']}", extra=["-o", f["out"]]), "--axes"),
-    "channel names count": (lambda f: _measure(f"A={f['cob']}", extra=["--channel-names", "a,b", "-o", f["out"]]), "--channel-names"),
+    "channel names count": (lambda f: _measure(f"A={f['pond']}", extra=["--channel-names", "a,b", "-o", f["out"]]), "--channel-names"),
     "malformed control": (lambda f: _measure("A", extra=["-o", f["out"]]), "LABEL=PATH"),
-    "missing output": (lambda f: _measure(f"A={f['cob']}"), "-o"),
-    "unknown option": (lambda f: _measure(f"A={f['cob']}", extra=["--frobnicate", "-o", f["out"]]), "--frobnicate"),
-    "bad bootstrap": (lambda f: _measure(f"A={f['cob']}", extra=["--bootstrap", "3", "-o", f["out"]]), "n_boot"),
+    "missing output": (lambda f: _measure(f"A={f['pond']}"), "-o"),
+    "unknown option": (lambda f: _measure(f"A={f['pond']}", extra=["--frobnicate", "-o", f["out"]]), "--frobnicate"),
+    "bad bootstrap": (lambda f: _measure(f"A={f['pond']}", extra=["--bootstrap", "3", "-o", f["out"]]), "n_boot"),
     "unknown command": (lambda f: ["transmogrify"], "transmogrify"),
     "description unknown key": (lambda f: _predict(f, "unknown_key"), "brightness"),
     "filter width zero": (lambda f: _predict(f, "zero_width"), "width"),
@@ -214,19 +214,19 @@ BAD_INPUT = {
                                           "also an input"),
     "description unknown filter name": (lambda f: _predict(f, "unknown_filter_name"), "em525"),
     "description unknown label shape": (lambda f: _predict(f, "unknown_shape"), "generic-teal"),
-    "coloc label not in matrix": (lambda f: _coloc(f, "--labels", "Cobaltin,Violetta"), "Violetta"),
-    "coloc malformed pair": (lambda f: _coloc(f, "--labels", "Cobaltin"), "A,B"),
-    "coloc mask of another size": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--mask", f["small_mask"]),
+    "coloc label not in matrix": (lambda f: _coloc(f, "--labels", "Pondpetal,Violetta"), "Violetta"),
+    "coloc malformed pair": (lambda f: _coloc(f, "--labels", "Pondpetal"), "A,B"),
+    "coloc mask of another size": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--mask", f["small_mask"]),
                                    "small_mask"),
-    "coloc empty mask": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--mask", f["empty_mask"]),
+    "coloc empty mask": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--mask", f["empty_mask"]),
                          "empty_mask"),
-    "coloc stack not a plane": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="stack"), "one plane"),
-    "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="renamed"),
+    "coloc stack not a plane": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", image="stack"), "one plane"),
+    "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", image="renamed"),
                                    "renamed.ome.tif"),
-    "coloc bad thresholds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--thresholds", "5"), "TA,TB"),
-    "coloc bad psf": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--psf", "1.4"), "NA,WAVELENGTH_NM"),
-    "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--rounds", "5"), "--rounds"),
-    "coloc json is the input": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--json", f["cob"]),
+    "coloc bad thresholds": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--thresholds", "5"), "TA,TB"),
+    "coloc bad psf": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--psf", "1.4"), "NA,WAVELENGTH_NM"),
+    "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--rounds", "5"), "--rounds"),
+    "coloc json is the input": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--json", f["pond"]),
                                 "also an input"),
     "complex pixels": (lambda f: _measure(f"A={f['complex']}", extra=["-o", f["out"]]), "complex64"),
     "boolean pixels": (lambda f: _measure(f"A={f['booleans']}", extra=["-o", f["out"]]), "bool"),
@@ -287,9 +287,9 @@ def test_bad_input_one_line_exit_2_nothing_written(case, files, capsys):
 
 def test_measure_success_writes_matrix_and_csv(files, capsys, tmp_path):
     csv_path = tmp_path / "m.csv"
-    inputs = [files["cob"], files["cob2"], files["fern"], files["emb"], files["unstained"]]
+    inputs = [files["pond"], files["pond2"], files["fern"], files["emb"], files["unstained"]]
     before = fingerprint(inputs)
-    argv = _measure(f"Cobaltin={files['cob']},{files['cob2']}", f"Fernlight={files['fern']}",
+    argv = _measure(f"Pondpetal={files['pond']},{files['pond2']}", f"Fernlight={files['fern']}",
                     f"Emberin={files['emb']}", extra=["--unstained", files["unstained"], "-o", files["out"],
                                                       "--csv", csv_path, "--bootstrap", "300"])
     assert main([str(a) for a in argv]) == 0

@@ -64,7 +64,7 @@ def _screenshot(viewer, widget, name):
 def _measured(qtbot, viewer):
     widget = MeasureWidget(viewer)
     # Both fields of each label, as two rows with the same label name.
-    widget.set_controls({label: [f"control {label} 1", f"control {label} 2"] for label in ("Cobaltin", "Fernlight",
+    widget.set_controls({label: [f"control {label} 1", f"control {label} 2"] for label in ("Pondpetal", "Fernlight",
                                                                                            "Emberin")})
     widget.unstained.setCurrentText("unstained")
     widget.bootstrap.setValue(200)
@@ -82,7 +82,7 @@ def test_sample_data_and_plugin_manifest(viewer):
 def test_measure_widget_equals_the_library(qtbot, viewer, errors):
     widget = _measured(qtbot, viewer)
     controls = {label: [layer_image(viewer.layers[f"control {label} {field}"]) for field in (1, 2)]
-                for label in ("Cobaltin", "Fernlight", "Emberin")}
+                for label in ("Pondpetal", "Fernlight", "Emberin")}
     reference = measure_matrix(controls, unstained=layer_image(viewer.layers["unstained"]),
                                settings=MeasureSettings(n_boot=200))
     np.testing.assert_allclose(widget.matrix.matrix, reference.matrix)
@@ -157,7 +157,7 @@ def test_matrix_reader_gives_a_matrix_source(qtbot, viewer, errors, tmp_path):
     unmix.matrix_source.setCurrentText("matrix m.json")
     unmix.unmix()
     qtbot.waitUntil(lambda: not unmix.runner.busy, timeout=WAIT_MS)
-    assert "Cobaltin (unmixed)" in viewer.layers and not errors
+    assert "Pondpetal (unmixed)" in viewer.layers and not errors
 
 
 def test_bad_input_becomes_a_notification(qtbot, make_napari_viewer, errors):
@@ -215,7 +215,7 @@ def _matrix_file(folder):
 
     values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
     return BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
-                              labels=("Cobaltin", "Fernlight", "Emberin"),
-                              primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                              labels=("Pondpetal", "Fernlight", "Emberin"),
+                              primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                               matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
                               background=np.full(3, 100.0), background_source="dark").save(folder / "m.json")

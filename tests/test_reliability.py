@@ -31,8 +31,8 @@ KILL_POINTS = 20
 
 def _matrix(folder: Path) -> Path:
     values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
-    return BleedThroughMatrix(kind="measured", channels=tuple(CHANNELS), labels=("Cobaltin", "Fernlight", "Emberin"),
-                              primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+    return BleedThroughMatrix(kind="measured", channels=tuple(CHANNELS), labels=("Pondpetal", "Fernlight", "Emberin"),
+                              primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                               matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
                               background=np.full(3, 100.0), background_source="dark",
                               saturation=np.full(3, 4095.0)).save(folder / "m.json")
@@ -259,7 +259,7 @@ def test_no_subcommand_modifies_its_inputs(tmp_path, demo):
         ["compare", str(matrix), str(tmp_path / "p.json"), "-o", str(tmp_path / "cmp")],
         ["plan", str(tmp_path / "demo_optics.toml")],
         ["apply", "--matrix", str(matrix), str(sample), "-o", str(tmp_path / "out")],
-        ["coloc", str(sample), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin", "--rounds", "19",
+        ["coloc", str(sample), "--matrix", str(matrix), "--labels", "Pondpetal,Emberin", "--rounds", "19",
          "--json", str(tmp_path / "c.json")],
         ["report", "--matrix", str(matrix), "--predicted", str(tmp_path / "p.json"), "--coloc",
          str(tmp_path / "c.json"), "-o", str(tmp_path / "r.html")],

@@ -17,7 +17,11 @@ from .scenario import demo_inputs, load_scenario
 
 
 def run_demo(outdir, out=None) -> dict:
-    """Run the tool on the shipped demo scenario, writing results to `outdir`."""
+    """Run the tool on the shipped demo scenario, writing results to `outdir`.
+
+    Idempotent: run again into the same folder, it replaces its own earlier results (each file
+    written atomically) and leaves any other file there alone.
+    """
     out = out or sys.stdout
     from ..matrix import load_matrix
     from ..measure.controls import measure_files
@@ -37,10 +41,11 @@ def run_demo(outdir, out=None) -> dict:
     print(f"\nTrue coefficients inside the measured 95 % interval: {int(inside.sum())} of {inside.size}",
           file=out)
 
-    from ..engine.batch import apply_matrix
+    from ..engine.batch import ApplySettings, apply_matrix
     from ..io.images import read_image
 
-    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed")
+    # The folder is the demo's own: a rerun replaces its earlier results (each file atomically).
+    (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed", settings=ApplySettings(overwrite=True))
     if result.status == "failed":
         raise RuntimeError(f"demo sample failed to unmix: {result.message}")
     unmixed = read_image(result.output).data
