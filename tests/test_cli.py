@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import argparse
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -350,3 +352,67 @@ def test_predict_compare_and_plan_from_the_command_line(tmp_path, capsys):
     capsys.readouterr()
     assert main(["plan", str(description)]) == 0
     assert "sequential" in capsys.readouterr().out
+
+
+def _run(*argv):
+    """The command as a user runs it: a real process."""
+    return subprocess.run([sys.executable, "-m", "unmix.cli", *map(str, argv)], capture_output=True, text=True)
+
+
+def test_top_level_help_is_a_short_user_description_with_two_examples():
+    run = _run("--help")
+    assert run.returncode == 0 and run.stderr == ""
+    text = run.stdout
+    assert "`" not in text and ":class:" not in text and ":mod:" not in text  # no reStructuredText
+    assert "bleed-through" in text and "each command has its own help" in text.lower()
+    examples = text[text.index("examples:"):]
+    assert len(re.findall(r"^  unmix \w+", examples, re.M)) == 2
+    for command in ("measure", "apply", "coloc", "report", "demo"):
+        assert re.search(rf"^  {command}\s+\S", text, re.M), command
+    assert len(text.splitlines()) <= 40
+
+
+def test_matrix_option_has_a_help_line_in_every_subcommand():
+    from unmix.cli import build_parser
+
+    parser = build_parser()
+    commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
+    with_matrix = {name: [a for a in sub._actions if "--matrix" in a.option_strings] for name, sub in commands.items()}
+    with_matrix = {name: actions[0] for name, actions in with_matrix.items() if actions}
+    assert set(with_matrix) == {"apply", "coloc", "report"}
+    assert all(action.help and len(action.help) > 10 for action in with_matrix.values())
+    for name in with_matrix:
+        assert "--matrix MATRIX.json" in _run(name, "--help").stdout
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["apply", "--matrx", "m.json", "x.tif", "-o", "out"], "unmix apply: unknown option --matrx; did you mean --matrix?"),
+    (["coloc", "x.tif", "--matrix", "m.json", "--labels", "A,B", "--min_r", "0.2"],
+     "unmix coloc: unknown option --min_r; did you mean --min-r?"),
+    (["measure", "--control", "A=a.tif", "--unstaned", "u.tif", "-o", "m.json"],
+     "unmix measure: unknown option --unstaned; did you mean --unstained?"),
+    (["report", "--matrix", "m.json", "--colocs=c.json", "-o", "r.html"],
+     "unmix report: unknown option --colocs; did you mean --coloc?"),
+    (["mesure", "--control", "A=a.tif"], "unmix: unknown command 'mesure'; did you mean 'measure'?"),
+])
+def test_a_misspelt_option_is_named_with_a_suggestion(tmp_path, argv, message):
+    run = subprocess.run([sys.executable, "-m", "unmix.cli", *argv], capture_output=True, text=True, cwd=tmp_path)
+    assert run.returncode == 2 and run.stdout == ""
+    assert run.stderr.strip().splitlines() == [f"error: {message}"]
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_values_that_look_like_options_are_left_to_their_option(files, tmp_path):
+    # A negative number is a value, and a unique prefix still works (argparse's own rules).
+    run = _run("coloc", files["pond"], "--matrix", Path(files["out"]).parent / "coloc_matrix.json", "--labels",
+               "Pondpetal,Emberin", "--min-r", "-0.2", "--round", "19", "--json", tmp_path / "c.json", "--quiet")
+    assert run.returncode == 0, run.stderr
+    assert json.loads((tmp_path / "c.json").read_text())["min_r"] == -0.2
+
+
+def test_measure_prints_each_qc_warning_once(files, tmp_path):
+    run = _run("measure", "--control", f"Fernlight={files['fern']}", "--primary", "Fernlight=orange600",
+               "--bootstrap", "200", "-o", tmp_path / "m.json")
+    assert run.returncode == 0, run.stderr
+    said = [line for line in (run.stdout + run.stderr).splitlines() if "not the brightest" in line]
+    assert len(said) == 1 and said[0].startswith("warning: ")

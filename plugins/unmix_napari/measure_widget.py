@@ -113,7 +113,10 @@ class MeasureWidget(QWidget):
         fill_table(self.table, ["channel \\ label", *matrix.labels], matrix_rows(matrix))
         lines = [f"Condition number {matrix.condition_number():.2f}; noise penalty "
                  + ", ".join(f"{label} {p:.2f}" for label, p in zip(matrix.labels, matrix.noise_penalty()))]
-        lines += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])] + [f"warning: {m}" for m in messages]
+        flags = matrix.qc.get("flags", [])
+        # Each flag was also a warning of the measurement: say it once.
+        lines += [f"QC: {flag}" for flag in flags] + [f"warning: {m}" for m in dict.fromkeys(messages)
+                                                       if m not in flags]
         self.messages.setPlainText("\n".join(lines))
         show_info("bleed-through matrix measured; the Unmix and Overlap widgets use it")
 

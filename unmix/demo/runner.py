@@ -35,7 +35,7 @@ def run_demo(outdir, out=None) -> dict:
     matrix_path = matrix.save(outdir / "demo_matrix.json")
     csv_path = matrix.save_csv(outdir / "demo_matrix.csv")
     print(f"Demo: {truth['scenario']['lab']}, {truth['scenario']['instrument']} (invented scenario)", file=out)
-    print(matrix_summary(matrix), file=out)
+    print(matrix_summary(matrix, flags=False), file=out)
     true = np.asarray(truth["matrix"])
     inside = (matrix.ci95_low <= true + 1e-12) & (true - 1e-12 <= matrix.ci95_high)
     print(f"\nTrue coefficients inside the measured 95 % interval: {int(inside.sum())} of {inside.size}",

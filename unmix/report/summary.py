@@ -46,8 +46,12 @@ def comparison_rows(comparison) -> list[list[str]]:
     return rows
 
 
-def matrix_summary(matrix: BleedThroughMatrix) -> str:
-    """The matrix with its 95 % intervals, per-label counts and any QC flags."""
+def matrix_summary(matrix: BleedThroughMatrix, flags: bool = True) -> str:
+    """The matrix with its 95 % intervals, per-label counts and (with `flags`) its QC flags.
+
+    Measuring emits each flag as a warning already: right after a measurement, pass
+    ``flags=False`` so that each is said once.
+    """
     rows = [["channel \\ label", *matrix.labels], *matrix_rows(matrix)]
     parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel"
              + (", 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
@@ -66,6 +70,6 @@ def matrix_summary(matrix: BleedThroughMatrix) -> str:
         parts += ["", f"Background ({matrix.background_source}): {levels}"]
     parts += ["", f"Condition number {matrix.condition_number():.2f}; noise penalty "
               + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, matrix.noise_penalty()))]
-    for flag in matrix.qc.get("flags", []):
-        parts.append(f"QC: {flag}")
+    if flags:
+        parts += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])]
     return "\n".join(parts)
