@@ -140,7 +140,7 @@ def test_two_runs_sharing_an_output_folder(tmp_path):
     _same_outputs(tmp_path / "clean", tmp_path / "shared", names)
     manifest = json.loads((tmp_path / "shared" / "unmix-manifest.json").read_text())
     assert len(manifest["outputs"]) == 4  # no entry lost to the other run
-    assert not list((tmp_path / "shared").glob(".*.partial"))
+    assert not list((tmp_path / "shared").glob(".*"))  # no temporary, no lock file left
 
 
 def test_same_inputs_and_seed_give_identical_results(tmp_path, demo):

@@ -686,18 +686,34 @@ def _record(manifest_path: Path, result: FileResult, matrix_sha: str, settings: 
 @contextlib.contextmanager
 def _manifest_lock(manifest_path: Path):
     """An exclusive advisory lock (POSIX flock) on a hidden file beside the manifest; released when
-    the process ends, even when it is killed."""
+    the process ends, even when it is killed.
+
+    The holder removes the lock file before releasing it, so no empty file is left in the output
+    folder. A run that was waiting then holds a lock on a removed file: it sees that the name no
+    longer leads to the file it locked, and locks afresh.
+    """
     try:
         import fcntl
     except ImportError:  # no flock on this platform: atomic replacement alone
         yield
         return
-    with open(manifest_path.with_name(f".{manifest_path.name}.lock"), "a+b") as handle:
+    lock_path = manifest_path.with_name(f".{manifest_path.name}.lock")
+    while True:
+        handle = open(lock_path, "a+b")
         fcntl.flock(handle, fcntl.LOCK_EX)
         try:
-            yield
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
+            named = os.stat(lock_path)
+        except FileNotFoundError:
+            named = None
+        held = os.fstat(handle.fileno())
+        if named is not None and (named.st_dev, named.st_ino) == (held.st_dev, held.st_ino):
+            break
+        handle.close()
+    try:
+        yield
+    finally:
+        lock_path.unlink(missing_ok=True)
+        handle.close()
 
 
 def _apply_one(matrix, unmixer, matrix_sha, path: Path, stem: str, outdir: Path, settings: ApplySettings,
