@@ -47,16 +47,17 @@ def spectra_figure(description):
     """One panel per channel: the labels' emission spectra (peak 1), the channel's detection band
     shaded, its dichroic dashed and its excitation dotted.
 
-    Each label is drawn in the colour of its emission peak wavelength and named at its peak; each
-    channel's name and band are drawn in the colour of the band's centre wavelength. The legend
-    stands outside the panels, so no name is cut off at any figure size.
+    Each label is drawn in the colour of its emission peak wavelength; each channel's name and
+    band in the colour of the band's centre wavelength. Names stand outside the data (the channel
+    as the panel's axis label, the labels in a legend below the panels) in a constrained layout,
+    so none is cut off or drawn over another at any figure width (the plugin's narrow dock too).
     """
     plt = _pyplot()
     from matplotlib.patches import Patch
 
     nm = description.grid.nm
     n = len(description.channels)
-    figure, axes = plt.subplots(n, 1, figsize=(8.0, 1.6 * n + 0.9), sharex=True, squeeze=False,
+    figure, axes = plt.subplots(n, 1, figsize=(7.0, 1.5 * n + 1.4), sharex=True, squeeze=False,
                                 layout="constrained")
     emission, peaks = {}, {}
     for label in description.labels:
@@ -74,7 +75,7 @@ def spectra_figure(description):
     low = min([float(nm[seen].min())] + lines) if seen.any() else float(nm[0])
     high = max([float(nm[seen].max())] + lines) if seen.any() else float(nm[-1])
     handles = {}
-    for row, (axis, channel) in enumerate(zip(axes[:, 0], description.channels)):
+    for axis, channel in zip(axes[:, 0], description.channels):
         centre = _band_centre(channel.emission_filter, nm) if channel.emission_filter is not None else None
         band_colour = wavelength_colour(centre) if centre is not None else (0.6, 0.6, 0.6)
         if channel.emission_filter is not None:
@@ -84,25 +85,21 @@ def spectra_figure(description):
         if channel.dichroic is not None:
             handles["dichroic (transmission)"], = axis.plot(nm, channel.dichroic(nm), color="0.45", ls="--", lw=0.8)
         for name, values in emission.items():
-            colour = wavelength_colour(peaks[name], on_white=True)
-            handles[name], = axis.plot(nm, values, color=colour, lw=1.6)
-            if row == 0:
-                axis.annotate(name, (peaks[name], 1.0), xytext=(0, 2), textcoords="offset points", ha="center",
-                              va="bottom", fontsize=8, color=colour, fontweight="bold")
+            handles[name], = axis.plot(nm, values, color=wavelength_colour(peaks[name], on_white=True), lw=1.6)
         source = channel.source
         if source.line_nm is not None:
             handles["excitation"] = axis.axvline(source.line_nm, color="k", lw=1.4, ls=":")
         else:
             power = source.spectrum(nm)
             handles["excitation"], = axis.plot(nm, power / power.max(), color="k", lw=1.0, ls=":")
-        axis.text(0.005, 0.93, channel.name, transform=axis.transAxes, ha="left", va="top", fontsize=9,
-                  fontweight="bold", color=wavelength_colour(centre, on_white=True) if centre else "k",
-                  bbox={"facecolor": "white", "edgecolor": "none", "alpha": 0.8, "pad": 1})
-        axis.set_ylim(0, 1.22 if row == 0 else 1.05)
+        axis.set_ylabel(channel.name, fontsize=9, fontweight="bold",
+                        color=wavelength_colour(centre, on_white=True) if centre else "k")
+        axis.set_ylim(0, 1.05)
         axis.set_yticks([0, 0.5, 1])
     axes[-1, 0].set_xlim(max(low - 15, nm[0]), min(high + 15, nm[-1]))
     axes[-1, 0].set_xlabel("wavelength (nm)")
-    figure.legend(list(handles.values()), list(handles), loc="outside right upper", fontsize=8, frameon=False)
+    figure.legend(list(handles.values()), list(handles), loc="outside lower center", ncol=2, fontsize=8,
+                  frameon=False)
     figure.suptitle("Emission spectra (peak 1) and each channel's bands", fontsize=10)
     return figure
 
@@ -214,15 +211,17 @@ def comparison_figure(comparison):
     return figure
 
 
-def coloc_histograms(before_pixels, after_pixels, result):
+def coloc_histograms(before_pixels, after_pixels, result, stacked: bool = False):
     """2-D intensity histograms of the pair before and after unmixing (log colour scale), with the
-    thresholds and the orthogonal regression line drawn; the verdict in the title."""
+    thresholds and the orthogonal regression line drawn; the verdict in the title. Side by side,
+    or one above the other with `stacked` (for a narrow panel)."""
     from matplotlib.colors import LogNorm
 
     from ..coloc.statistics import orthogonal_regression
 
     plt = _pyplot()
-    figure, axes = plt.subplots(1, 2, figsize=(10.5, 4.8), layout="constrained")
+    figure, axes = plt.subplots(*((2, 1) if stacked else (1, 2)), figsize=(5.4, 9.0) if stacked else (10.5, 4.8),
+                                layout="constrained")
     a_label, b_label = result.pair
     for axis, (a, b), coefficients, title in (
             (axes[0], before_pixels, result.before, "before: primary channels, background subtracted"),

@@ -9,7 +9,8 @@ One definition each, so that a verdict looks the same in the browser and in the 
 - :data:`COMPARISON_LOOK`: colour and marker of the measured-versus-predicted verdicts.
 - :data:`LABEL_COLOURS`: the display colour of the k-th label in composites (the report's sample
   thumbnails, the plugin's unmixed layers), as napari colormap names and RGB.
-- :func:`wavelength_colour`: the perceived colour of a wavelength, for spectra plots.
+- :func:`wavelength_colour`: the perceived colour of a wavelength, for spectra plots;
+  :func:`channel_colour`: an image channel's colour, from the wavelength in its name.
 """
 
 from __future__ import annotations
@@ -77,6 +78,17 @@ def wavelength_colour(nm: float, *, on_white: bool = False) -> tuple[float, floa
         hue, lightness, saturation = colorsys.rgb_to_hls(*rgb)
         rgb = colorsys.hls_to_rgb(hue, min(lightness, 0.42), saturation)
     return tuple(float(v) for v in rgb)
+
+
+def channel_colour(name: str, index: int) -> tuple[float, float, float]:
+    """Display colour of an image channel: the colour of the wavelength its name gives (``green525``,
+    ``em 610``: a number within 380-750 nm), else the `index`-th label colour."""
+    import re
+
+    for number in re.findall(r"(?<!\d)\d{3}(?!\d)", name):
+        if 380 <= int(number) <= 750:
+            return wavelength_colour(float(number))
+    return label_colour(index)[1]
 
 
 def hex_colour(rgb) -> str:
