@@ -14,7 +14,7 @@ def add_parsers(sub, common) -> None:
                              description="Predict the bleed-through matrix from a description of labels and optics.")
     predict.add_argument("--config", required=True, metavar="DESCRIPTION.toml", help="the description file")
     predict.add_argument("-o", "--output", required=True, metavar="PREDICTED.json", help="the matrix file to write")
-    predict.add_argument("--acquisition", choices=["sequential", "simultaneous", "tracks"],
+    predict.add_argument("--acquisition", choices=["sequential", "simultaneous", "grouped"],
                          help="acquisition mode (default: the description's)")
     predict.add_argument("--plot", metavar="SPECTRA.png", help="also draw the spectra and filter bands")
     predict.set_defaults(run=run_predict)
@@ -31,7 +31,7 @@ def add_parsers(sub, common) -> None:
                           description="Rank candidate set-ups (description files, acquisition modes) by their "
                                       "largest predicted leak, then by their worst noise penalty.")
     plan.add_argument("configs", nargs="+", metavar="DESCRIPTION.toml")
-    plan.add_argument("--acquisition", choices=["both", "sequential", "simultaneous", "tracks"], default="both",
+    plan.add_argument("--acquisition", choices=["both", "sequential", "simultaneous", "grouped"], default="both",
                       help="modes to rank for each description (both)")
     plan.set_defaults(run=run_plan)
 
