@@ -416,3 +416,10 @@ def test_measure_prints_each_qc_warning_once(files, tmp_path):
     assert run.returncode == 0, run.stderr
     said = [line for line in (run.stdout + run.stderr).splitlines() if "not the brightest" in line]
     assert len(said) == 1 and said[0].startswith("warning: ")
+
+
+def test_a_short_option_may_carry_its_value(files, tmp_path):
+    run = _run("measure", "--control", f"Fernlight={files['fern']}", "--bootstrap", "200", f"-o{tmp_path / 'm.json'}",
+               "--quiet")
+    assert run.returncode == 0, run.stderr
+    assert (tmp_path / "m.json").exists()

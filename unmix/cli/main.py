@@ -89,13 +89,13 @@ def _suggestion(name: str, known) -> str | None:
     return close[0] if close else None
 
 
-def check_names(parser: argparse.ArgumentParser, argv) -> None:
+def _check_names(parser: argparse.ArgumentParser, argv) -> None:
     """Refuse a misspelt command or option by name, with the nearest correct one.
 
     argparse alone reports a misspelt option only as "unrecognized arguments", or worse, as a
     missing required option (``--matrx`` for ``--matrix``). Options are checked as argparse
-    reads them: exact names, unique prefixes and ``--name=value``; values that look like
-    negative numbers are values.
+    reads them: exact names, unique prefixes, ``--name=value`` and ``-oVALUE``; values that look
+    like negative numbers are values.
     """
     commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
     top = [o for a in parser._actions for o in a.option_strings]
@@ -120,6 +120,8 @@ def check_names(parser: argparse.ArgumentParser, argv) -> None:
         name = token.split("=", 1)[0]
         if name in options or (name.startswith("--") and len([o for o in options if o.startswith(name)]) == 1):
             continue
+        if not name.startswith("--") and token[:2] in options:  # a short option with its value: -oOUT
+            continue
         near = _suggestion(name, options)
         raise InputError(f"unmix {command}: unknown option {name}; "
                          + (f"did you mean {near}?" if near else f"see 'unmix {command} --help'"))
@@ -139,7 +141,7 @@ def _run(argv, debug: bool) -> int:
     logging.getLogger().addHandler(handler)
     try:
         parser = build_parser()
-        check_names(parser, argv)
+        _check_names(parser, argv)
         args = parser.parse_args(argv)
         return args.run(args)
     except InputError as exc:
