@@ -84,9 +84,38 @@ def test_z_stack_blocks_equal_the_kernel(tmp_path, capsys):
     code, _, err = _run(["apply", "--matrix", matrix_path, source, "-o", tmp_path / "out", "--quiet"], capsys)
     assert code == 0, err
     result = read_image(tmp_path / "out" / "z.unmixed.ome.tif")
-    assert result.axes == "CZYX" and result.data.shape == (2, 4, 40, 50)
+    assert result.axes == "CZYX" and result.data.shape == (2, 4, 40, 50)  # read back in canonical order
+    with tifffile.TiffFile(tmp_path / "out" / "z.unmixed.ome.tif") as stored:  # as stored: the input's order
+        assert stored.series[0].axes == "ZCYX" and stored.series[0].shape == (4, 2, 40, 50)
     expected = Unmixer(matrix.matrix).unmix(np.moveaxis(data, 1, 0), matrix.background)
     np.testing.assert_array_equal(result.data, expected)
+
+
+def _record_many(manifest, start, count):
+    from unmix.io.atomic import folder_lock, write_text_atomic
+
+    for i in range(start, start + count):
+        with folder_lock(manifest.with_name(f".{manifest.name}.lock")):
+            entries = json.loads(manifest.read_text()) if manifest.exists() else {"outputs": {}}
+            entries["outputs"][f"out{i}.unmixed.ome.tif"] = {"input": f"in{i}.tif"}
+            write_text_atomic(manifest, json.dumps(entries))
+
+
+def test_manifest_updates_are_exclusive_and_leave_no_lock_file(tmp_path):
+    # Four processes add 25 entries each to one manifest: none is lost (the lock excludes the
+    # others while one reads, updates and replaces it), and no lock file stays behind.
+    import multiprocessing
+
+    manifest = tmp_path / "unmix-manifest.json"
+    processes = [multiprocessing.get_context("fork").Process(target=_record_many, args=(manifest, 25 * i, 25))
+                 for i in range(4)]
+    for process in processes:
+        process.start()
+    for process in processes:
+        process.join()
+        assert process.exitcode == 0
+    assert len(json.loads(manifest.read_text())["outputs"]) == 100
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["unmix-manifest.json"]
 
 
 def test_nan_pixels_give_nan_and_are_counted(tmp_path, demo_matrix, capsys):
@@ -126,7 +155,7 @@ def test_broken_file_in_batch_others_finish(tmp_path, demo, demo_matrix, capsys)
 
 def _predicted(tmp_path):
     matrix = BleedThroughMatrix(kind="predicted", channels=("blue450", "green525", "orange600"),
-                                labels=("Cobaltin", "Fernlight"), primary={"Cobaltin": "blue450", "Fernlight": "green525"},
+                                labels=("Pondpetal", "Fernlight"), primary={"Pondpetal": "blue450", "Fernlight": "green525"},
                                 matrix=np.array([[1.0, 0.02], [0.12, 1.0], [0.03, 0.35]]))
     return matrix.save(tmp_path / "predicted.json")
 

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import argparse
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -20,32 +22,32 @@ from unmix.matrix import BleedThroughMatrix
 def files(tmp_path, demo):
     """Demo controls plus damaged and odd files, in a scratch folder."""
     c = demo["controls"]
-    paths = {"cob": c["Cobaltin"][0], "cob2": c["Cobaltin"][1], "fern": c["Fernlight"][0],
+    paths = {"pond": c["Pondpetal"][0], "pond2": c["Pondpetal"][1], "fern": c["Fernlight"][0],
              "emb": c["Emberin"][0], "dark": demo["dark"], "unstained": demo["unstained"]}
-    data = Path(paths["cob"]).read_bytes()
+    data = Path(paths["pond"]).read_bytes()
     (tmp_path / "truncated.ome.tif").write_bytes(data[: len(data) // 3])
     (tmp_path / "notes.tif").write_text("these are not pixels\n")
     (tmp_path / "empty.tif").write_bytes(b"")
-    cob = tifffile.imread(paths["cob"])
-    tifffile.imwrite(tmp_path / "two_channels.ome.tif", cob[:2], ome=True,
+    pond = tifffile.imread(paths["pond"])
+    tifffile.imwrite(tmp_path / "two_channels.ome.tif", pond[:2], ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525"]}})
-    tifffile.imwrite(tmp_path / "renamed.ome.tif", cob, ome=True,
+    tifffile.imwrite(tmp_path / "renamed.ome.tif", pond, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["b", "g", "o"]}})
-    tifffile.imwrite(tmp_path / "flat.ome.tif", np.full_like(cob, 4095), ome=True,
+    tifffile.imwrite(tmp_path / "flat.ome.tif", np.full_like(pond, 4095), ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    nan = cob.astype(np.float32)
+    nan = pond.astype(np.float32)
     nan[0, 10, 10] = np.nan
     tifffile.imwrite(tmp_path / "nan.ome.tif", nan, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    saturated = cob.copy()
+    saturated = pond.copy()
     saturated[0][saturated[0] > 300] = 4095
     tifffile.imwrite(tmp_path / "saturated.ome.tif", saturated, ome=True,
                      metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    tifffile.imwrite(tmp_path / "four_d.tif", np.stack([cob, cob]), photometric="minisblack")  # shape only, no axes
+    tifffile.imwrite(tmp_path / "four_d.tif", np.stack([pond, pond]), photometric="minisblack")  # shape only, no axes
     _descriptions(tmp_path)
-    _coloc_files(tmp_path, cob.shape[1:])
+    _coloc_files(tmp_path, pond.shape[1:])
     _odd_files(tmp_path)
-    _unsafe_files(tmp_path, cob)
+    _unsafe_files(tmp_path, pond)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
     return paths
@@ -124,7 +126,7 @@ def _unsafe_files(folder: Path, pixels) -> None:
     (folder / "a_file").write_text("not a folder\n")
 
 
-def _apply(files, matrix, image="cob"):
+def _apply(files, matrix, image="pond"):
     folder = Path(files["out"]).parent
     return ["apply", "--matrix", folder / f"{matrix}.json", files[image], "-o", folder / "unmixed"]
 
@@ -133,19 +135,28 @@ def _coloc_files(folder: Path, shape) -> None:
     """A matrix of the demo's channels and labels, and masks of the wrong size or empty."""
     values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
     BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
-                       labels=("Cobaltin", "Fernlight", "Emberin"),
-                       primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                       labels=("Pondpetal", "Fernlight", "Emberin"),
+                       primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                        matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01, background=np.full(3, 100.0),
                        background_source="dark", saturation=np.full(3, 4095.0)).save(folder / "coloc_matrix.json")
+    side = {"pearson": 0.5, "p_value": 0.001, "thresholds": [1.0, 2.0]}
+    record = {"pair": ["Pondpetal", "Emberin"], "before": side, "after": side, "verdict": "persists"}
+    (folder / "old_coloc.json").write_text(json.dumps(record))  # written before coloc recorded its matrix
+    (folder / "foreign_coloc.json").write_text(json.dumps({**record, "matrix_sha256": "0" * 64}))
     tifffile.imwrite(folder / "small_mask.tif", np.ones((5, 5), np.uint8))
     tifffile.imwrite(folder / "empty_mask.tif", np.zeros(shape, np.uint8))
     tifffile.imwrite(folder / "stack.ome.tif", np.zeros((2, 3, 8, 8), np.uint16), ome=True,
                      metadata={"axes": "ZCYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
 
 
-def _coloc(files, *extra, image="cob", matrix="coloc_matrix"):
+def _coloc(files, *extra, image="pond", matrix="coloc_matrix"):
     folder = Path(files["out"]).parent
     return ["coloc", files[image], "--matrix", folder / f"{matrix}.json", *extra]
+
+
+def _report(files, *extra):
+    folder = Path(files["out"]).parent
+    return ["report", "--matrix", folder / "coloc_matrix.json", *extra, "-o", folder / "report.html"]
 
 
 def _descriptions(folder: Path) -> None:
@@ -193,31 +204,31 @@ BAD_INPUT = {
     "truncated tiff": (lambda f: _measure(f"A={f['truncated']}", extra=["-o", f["out"]]), "truncated"),
     "not an image": (lambda f: _measure(f"A={f['notes']}", extra=["-o", f["out"]]), "notes.tif"),
     "empty file": (lambda f: _measure(f"A={f['empty']}", extra=["-o", f["out"]]), "empty.tif"),
-    "channel count differs": (lambda f: _measure(f"A={f['cob']}", f"B={f['two_channels']}",
+    "channel count differs": (lambda f: _measure(f"A={f['pond']}", f"B={f['two_channels']}",
                                                  extra=["-o", f["out"]]), "two_channels"),
-    "channel names differ": (lambda f: _measure(f"A={f['cob']}", f"B={f['renamed']}",
+    "channel names differ": (lambda f: _measure(f"A={f['pond']}", f"B={f['renamed']}",
                                                 extra=["-o", f["out"]]), "renamed"),
     "no usable pixels": (lambda f: _measure(f"A={f['dark']}", extra=["-o", f["out"]]), "dark.ome.tif"),
     "all saturated": (lambda f: _measure(f"A={f['flat']}", extra=["-o", f["out"]]), "flat.ome.tif"),
     "saturated above limit": (lambda f: _measure(f"A={f['saturated']}", extra=["-o", f["out"]]), "saturated.ome.tif"),
     "nan without allow": (lambda f: _measure(f"A={f['nan']}", extra=["-o", f["out"]]), "--allow-nonfinite"),
-    "label twice": (lambda f: _measure(f"A={f['cob']}", f"A={f['fern']}", extra=["-o", f["out"]]), "given twice"),
-    "file twice": (lambda f: _measure(f"A={f['cob']}", f"B={f['cob']}", extra=["-o", f["out"]]), "given twice"),
-    "file twice in one label": (lambda f: _measure(f"A={f['cob']},{f['cob']}", extra=["-o", f["out"]]), "given twice"),
-    "output is an input": (lambda f: _measure(f"A={f['cob']}", extra=["-o", f["cob"]]), "also an input"),
-    "output folder missing": (lambda f: _measure(f"A={f['cob']}", extra=["-o", "/no/such/dir/m.json"]), "does not exist"),
-    "unknown primary channel": (lambda f: _measure(f"A={f['cob']}", extra=["--primary", "A=red700", "-o", f["out"]]), "red700"),
-    "primary for unknown label": (lambda f: _measure(f"A={f['cob']}", extra=["--primary", "Z=blue450", "-o", f["out"]]), "'Z'"),
-    "bad saturation": (lambda f: _measure(f"A={f['cob']}", extra=["--saturation", "lots", "-o", f["out"]]), "--saturation"),
-    "saturation count": (lambda f: _measure(f"A={f['cob']}", extra=["--saturation", "1,2", "-o", f["out"]]), "--saturation"),
-    "axes wrong length": (lambda f: _measure(f"A={f['cob']}", extra=["--axes", "ZCYX", "-o", f["out"]]), "--axes"),
-    "axes invalid": (lambda f: _measure(f"A={f['cob']}", extra=["--axes", "QYX", "-o", f["out"]]), "--axes"),
+    "label twice": (lambda f: _measure(f"A={f['pond']}", f"A={f['fern']}", extra=["-o", f["out"]]), "given twice"),
+    "file twice": (lambda f: _measure(f"A={f['pond']}", f"B={f['pond']}", extra=["-o", f["out"]]), "given twice"),
+    "file twice in one label": (lambda f: _measure(f"A={f['pond']},{f['pond']}", extra=["-o", f["out"]]), "given twice"),
+    "output is an input": (lambda f: _measure(f"A={f['pond']}", extra=["-o", f["pond"]]), "also an input"),
+    "output folder missing": (lambda f: _measure(f"A={f['pond']}", extra=["-o", "/no/such/dir/m.json"]), "does not exist"),
+    "unknown primary channel": (lambda f: _measure(f"A={f['pond']}", extra=["--primary", "A=red700", "-o", f["out"]]), "red700"),
+    "primary for unknown label": (lambda f: _measure(f"A={f['pond']}", extra=["--primary", "Z=blue450", "-o", f["out"]]), "'Z'"),
+    "bad saturation": (lambda f: _measure(f"A={f['pond']}", extra=["--saturation", "lots", "-o", f["out"]]), "--saturation"),
+    "saturation count": (lambda f: _measure(f"A={f['pond']}", extra=["--saturation", "1,2", "-o", f["out"]]), "--saturation"),
+    "axes wrong length": (lambda f: _measure(f"A={f['pond']}", extra=["--axes", "ZCYX", "-o", f["out"]]), "--axes"),
+    "axes invalid": (lambda f: _measure(f"A={f['pond']}", extra=["--axes", "QYX", "-o", f["out"]]), "--axes"),
     "no axes for 4-D": (lambda f: _measure(f"A={f['four_d']}", extra=["-o", f["out"]]), "--axes"),
-    "channel names count": (lambda f: _measure(f"A={f['cob']}", extra=["--channel-names", "a,b", "-o", f["out"]]), "--channel-names"),
+    "channel names count": (lambda f: _measure(f"A={f['pond']}", extra=["--channel-names", "a,b", "-o", f["out"]]), "--channel-names"),
     "malformed control": (lambda f: _measure("A", extra=["-o", f["out"]]), "LABEL=PATH"),
-    "missing output": (lambda f: _measure(f"A={f['cob']}"), "-o"),
-    "unknown option": (lambda f: _measure(f"A={f['cob']}", extra=["--frobnicate", "-o", f["out"]]), "--frobnicate"),
-    "bad bootstrap": (lambda f: _measure(f"A={f['cob']}", extra=["--bootstrap", "3", "-o", f["out"]]), "n_boot"),
+    "missing output": (lambda f: _measure(f"A={f['pond']}"), "-o"),
+    "unknown option": (lambda f: _measure(f"A={f['pond']}", extra=["--frobnicate", "-o", f["out"]]), "--frobnicate"),
+    "bad bootstrap": (lambda f: _measure(f"A={f['pond']}", extra=["--bootstrap", "3", "-o", f["out"]]), "n_boot"),
     "unknown command": (lambda f: ["transmogrify"], "transmogrify"),
     "description unknown key": (lambda f: _predict(f, "unknown_key"), "brightness"),
     "filter width zero": (lambda f: _predict(f, "zero_width"), "width"),
@@ -237,32 +248,32 @@ BAD_INPUT = {
                                           "also an input"),
     "description unknown filter name": (lambda f: _predict(f, "unknown_filter_name"), "em525"),
     "description unknown label shape": (lambda f: _predict(f, "unknown_shape"), "generic-teal"),
-    "coloc label not in matrix": (lambda f: _coloc(f, "--labels", "Cobaltin,Violetta"), "Violetta"),
-    "coloc malformed pair": (lambda f: _coloc(f, "--labels", "Cobaltin"), "A,B"),
-    "coloc mask of another size": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--mask", f["small_mask"]),
+    "coloc label not in matrix": (lambda f: _coloc(f, "--labels", "Pondpetal,Violetta"), "Violetta"),
+    "coloc malformed pair": (lambda f: _coloc(f, "--labels", "Pondpetal"), "A,B"),
+    "coloc mask of another size": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--mask", f["small_mask"]),
                                    "small_mask"),
-    "coloc empty mask": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--mask", f["empty_mask"]),
+    "coloc empty mask": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--mask", f["empty_mask"]),
                          "empty_mask"),
-    "coloc plane outside the stack": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--plane", "99",
+    "coloc plane outside the stack": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--plane", "99",
                                                        image="stack"), "--plane 99"),
-    "coloc frames without time": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--frames", "0:2",
+    "coloc frames without time": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--frames", "0:2",
                                                    image="stack"), "--frames 0:2"),
-    "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", image="renamed"),
+    "coloc image lacks channels": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", image="renamed"),
                                    "renamed.ome.tif"),
-    "coloc bad thresholds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--thresholds", "5"), "TA,TB"),
-    "coloc negative seed": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--seed", "-1"), "--seed -1"),
-    "coloc pixel size nan": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--pixel-um", "nan"),
+    "coloc bad thresholds": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--thresholds", "5"), "TA,TB"),
+    "coloc negative seed": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--seed", "-1"), "--seed -1"),
+    "coloc pixel size nan": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--pixel-um", "nan"),
                              "--pixel-um nan"),
-    "coloc pixel size negative": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--pixel-um", "-1"),
+    "coloc pixel size negative": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--pixel-um", "-1"),
                                   "--pixel-um -1"),
-    "coloc min-r nan": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--min-r", "nan"), "--min-r nan"),
-    "matrix with a 400-digit number": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin",
+    "coloc min-r nan": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--min-r", "nan"), "--min-r nan"),
+    "matrix with a 400-digit number": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin",
                                                         matrix="digits_matrix"), "digits_matrix.json"),
-    "matrix with qc.flags not a list": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin",
+    "matrix with qc.flags not a list": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin",
                                                          matrix="flags_matrix"), "flags_matrix.json"),
-    "coloc bad psf": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--psf", "1.4"), "NA,WAVELENGTH_NM"),
-    "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--rounds", "5"), "--rounds"),
-    "coloc json is the input": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--json", f["cob"]),
+    "coloc bad psf": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--psf", "1.4"), "NA,WAVELENGTH_NM"),
+    "coloc too few rounds": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--rounds", "5"), "--rounds"),
+    "coloc json is the input": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--json", f["pond"]),
                                 "also an input"),
     "complex pixels": (lambda f: _measure(f"A={f['complex']}", extra=["-o", f["out"]]), "complex64"),
     "boolean pixels": (lambda f: _measure(f"A={f['booleans']}", extra=["-o", f["out"]]), "bool"),
@@ -273,28 +284,32 @@ BAD_INPUT = {
     "matrix interval excludes its value": (lambda f: _apply(f, "ci_matrix"), "interval"),
     "matrix non-finite value": (lambda f: _apply(f, "nan_matrix"), "nan_matrix.json"),
     "apply complex pixels": (lambda f: _apply(f, "coloc_matrix", image="complex"), "complex64"),
+    "report coloc of another matrix": (lambda f: _report(f, "--coloc", f["foreign_coloc"]), "foreign_coloc.json"),
+    "report coloc without its matrix": (lambda f: _report(f, "--coloc", f["old_coloc"]), "old_coloc.json"),
+    "report sample missing": (lambda f: _report(f, "--sample", "/no/such/sample.tif"), "/no/such/sample.tif"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
+    "compare swapped controls": (lambda f: _compare_pair(f, swapped=True), "swapped controls"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
                              "notes.tif"),
     "fifo as an image": (lambda f: _measure(f"A={f['pipe']}", extra=["-o", f["out"]]), "not a regular file"),
-    "fifo as a matrix": (lambda f: ["apply", "--matrix", f["pipe"], f["cob"], "-o", _folder(f, "unmixed")],
+    "fifo as a matrix": (lambda f: ["apply", "--matrix", f["pipe"], f["pond"], "-o", _folder(f, "unmixed")],
                          "not a regular file"),
     "fifo as a description": (lambda f: ["predict", "--config", f["pipe"], "-o", f["out"]], "not a regular file"),
-    "device as a matrix": (lambda f: ["apply", "--matrix", "/dev/zero", f["cob"], "-o", _folder(f, "unmixed")],
+    "device as a matrix": (lambda f: ["apply", "--matrix", "/dev/zero", f["pond"], "-o", _folder(f, "unmixed")],
                            "/dev/zero"),
     "device as a description": (lambda f: ["predict", "--config", "/dev/zero", "-o", f["out"]], "/dev/zero"),
     "device as a spectrum": (lambda f: _predict(f, "zero_csv"), "/dev/zero"),
     "device as an include": (lambda f: _predict(f, "zero_include"), "/dev/zero"),
     "device as a coloc file": (lambda f: ["report", "--matrix", _folder(f, "coloc_matrix.json"), "--coloc", "/dev/zero",
                                           "-o", _folder(f, "r.html")], "/dev/zero"),
-    "text file too large": (lambda f: ["apply", "--matrix", f["huge_matrix"], f["cob"], "-o", _folder(f, "unmixed")],
+    "text file too large": (lambda f: ["apply", "--matrix", f["huge_matrix"], f["pond"], "-o", _folder(f, "unmixed")],
                             "too large"),
     "description nested too deeply": (lambda f: _predict(f, "nested"), "nested too deeply"),
     "grid step too fine": (lambda f: _predict(f, "fine_grid"), "step"),
     "symbolic link loop as a control": (lambda f: _measure(f"A={_folder(f, 'loop_a.tif')}", extra=["-o", f["out"]]),
                                         "loop_a.tif"),
-    "symbolic link loop as -o": (lambda f: _measure(f"A={f['cob']}", extra=["-o", _folder(f, "loop_a.tif")]),
+    "symbolic link loop as -o": (lambda f: _measure(f"A={f['pond']}", extra=["-o", _folder(f, "loop_a.tif")]),
                                  "loop_a.tif"),
     "apply output is the zarr input": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["input"],
                                                   "-o", f["input"]], "also an input"),
@@ -303,25 +318,25 @@ BAD_INPUT = {
     "measure output inside a zarr control": (lambda f: _measure(f"A={f['input']}", extra=[
         "-o", Path(f["input"]) / "m.json"]), "inside the input"),
     "coloc json inside the zarr input": (lambda f: ["coloc", f["input"], "--matrix", _folder(f, "coloc_matrix.json"),
-                                                    "--labels", "Cobaltin,Emberin", "--json",
+                                                    "--labels", "Pondpetal,Emberin", "--json",
                                                     Path(f["input"]) / "c.json"], "inside the input"),
     "output name too long": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"),
                                         _folder(f, "long_input/" + "n" * 240 + ".tif"), "-o", _folder(f, "unmixed")],
                              "255"),
-    "foreign manifest": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+    "foreign manifest": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["pond"], "-o",
                                     _folder(f, "foreign_manifest")], "unmix-manifest.json"),
-    "manifest is a folder": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+    "manifest is a folder": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["pond"], "-o",
                                         _folder(f, "manifest_folder")], "unmix-manifest.json"),
-    "scheduler not an address": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+    "scheduler not an address": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["pond"], "-o",
                                             _folder(f, "unmixed"), "--scheduler", "nonsense"], "--scheduler"),
-    "memory not a size": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+    "memory not a size": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["pond"], "-o",
                                      _folder(f, "unmixed"), "--memory", "lots"], "--memory"),
-    "memory too small": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["cob"], "-o",
+    "memory too small": (lambda f: ["apply", "--matrix", _folder(f, "coloc_matrix.json"), f["pond"], "-o",
                                     _folder(f, "unmixed"), "--memory", "1K"], "--memory"),
-    "bootstrap beyond bound": (lambda f: _measure(f"A={f['cob']}", extra=["--bootstrap", "100000000", "-o",
+    "bootstrap beyond bound": (lambda f: _measure(f"A={f['pond']}", extra=["--bootstrap", "100000000", "-o",
                                                                          f["out"]]), "--bootstrap"),
-    "negative seed": (lambda f: _measure(f"A={f['cob']}", extra=["--seed", "-1", "-o", f["out"]]), "--seed"),
-    "saturated percent out of range": (lambda f: _measure(f"A={f['cob']}", extra=["--max-saturated-percent", "nan",
+    "negative seed": (lambda f: _measure(f"A={f['pond']}", extra=["--seed", "-1", "-o", f["out"]]), "--seed"),
+    "saturated percent out of range": (lambda f: _measure(f"A={f['pond']}", extra=["--max-saturated-percent", "nan",
                                                                                  "-o", f["out"]]),
                                        "--max-saturated-percent"),
     "compare negative tolerance": (lambda f: [*_compare_pair(f, same=True), "--tolerance", "-1"], "--tolerance"),
@@ -340,14 +355,17 @@ def _predict(files, variant):
     return ["predict", "--config", Path(files["out"]).parent / f"{variant}.toml", "-o", files["out"]]
 
 
-def _compare_pair(files, labels=False, same=False):
+def _compare_pair(files, labels=False, same=False, swapped=False):
     folder = Path(files["out"]).parent
     measured = BleedThroughMatrix(kind="measured", channels=("g", "o"), labels=("A",), primary={"A": "g"},
                                   matrix=np.array([[1.0], [0.2]]), ci95_low=np.array([[1.0], [0.1]]),
                                   ci95_high=np.array([[1.0], [0.3]]), background=np.zeros(2), background_source="dark")
-    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels or same else ("g", "r"),
+    predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o") if labels or same or swapped else ("g", "r"),
                                    labels=("Z",) if labels else ("A",), primary={"Z" if labels else "A": "g"},
                                    matrix=np.array([[1.0], [0.2]]))
+    if swapped:  # A's control was another label's: brightest in o, where A itself gives almost nothing
+        predicted = BleedThroughMatrix(kind="predicted", channels=("g", "o"), labels=("A",), primary={"A": "o"},
+                                       matrix=np.array([[3e-6], [1.0]]))
     measured.save(folder / "measured.json")
     predicted.save(folder / "predicted.json")
     return ["compare", folder / "measured.json", folder / "predicted.json", "-o", folder / "cmp"]
@@ -373,9 +391,9 @@ def test_bad_input_one_line_exit_2_nothing_written(case, files, capsys):
 
 def test_measure_success_writes_matrix_and_csv(files, capsys, tmp_path):
     csv_path = tmp_path / "m.csv"
-    inputs = [files["cob"], files["cob2"], files["fern"], files["emb"], files["unstained"]]
+    inputs = [files["pond"], files["pond2"], files["fern"], files["emb"], files["unstained"]]
     before = fingerprint(inputs)
-    argv = _measure(f"Cobaltin={files['cob']},{files['cob2']}", f"Fernlight={files['fern']}",
+    argv = _measure(f"Pondpetal={files['pond']},{files['pond2']}", f"Fernlight={files['fern']}",
                     f"Emberin={files['emb']}", extra=["--unstained", files["unstained"], "-o", files["out"],
                                                       "--csv", csv_path, "--bootstrap", "300"])
     assert main([str(a) for a in argv]) == 0
@@ -537,3 +555,74 @@ def test_report_refuses_deeply_nested_coloc_json(tmp_path, capsys):
     assert main(["report", "--matrix", str(tmp_path / "m.json"), "--coloc", str(tmp_path / "c.json"), "-o",
                  str(tmp_path / "r.html")]) == 2
     assert "c.json" in capsys.readouterr().err
+
+
+def _run(*argv):
+    """The command as a user runs it: a real process."""
+    return subprocess.run([sys.executable, "-m", "unmix.cli", *map(str, argv)], capture_output=True, text=True)
+
+
+def test_top_level_help_is_a_short_user_description_with_two_examples():
+    run = _run("--help")
+    assert run.returncode == 0 and run.stderr == ""
+    text = run.stdout
+    assert "`" not in text and ":class:" not in text and ":mod:" not in text  # no reStructuredText
+    assert "bleed-through" in text and "each command has its own help" in text.lower()
+    examples = text[text.index("examples:"):]
+    assert len(re.findall(r"^  unmix \w+", examples, re.M)) == 2
+    for command in ("measure", "apply", "coloc", "report", "demo"):
+        assert re.search(rf"^  {command}\s+\S", text, re.M), command
+    assert len(text.splitlines()) <= 40
+
+
+def test_matrix_option_has_a_help_line_in_every_subcommand():
+    from unmix.cli import build_parser
+
+    parser = build_parser()
+    commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
+    with_matrix = {name: [a for a in sub._actions if "--matrix" in a.option_strings] for name, sub in commands.items()}
+    with_matrix = {name: actions[0] for name, actions in with_matrix.items() if actions}
+    assert set(with_matrix) == {"apply", "coloc", "report"}
+    assert all(action.help and len(action.help) > 10 for action in with_matrix.values())
+    for name in with_matrix:
+        assert "--matrix MATRIX.json" in _run(name, "--help").stdout
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["apply", "--matrx", "m.json", "x.tif", "-o", "out"], "unmix apply: unknown option --matrx; did you mean --matrix?"),
+    (["coloc", "x.tif", "--matrix", "m.json", "--labels", "A,B", "--min_r", "0.2"],
+     "unmix coloc: unknown option --min_r; did you mean --min-r?"),
+    (["measure", "--control", "A=a.tif", "--unstaned", "u.tif", "-o", "m.json"],
+     "unmix measure: unknown option --unstaned; did you mean --unstained?"),
+    (["report", "--matrix", "m.json", "--colocs=c.json", "-o", "r.html"],
+     "unmix report: unknown option --colocs; did you mean --coloc?"),
+    (["mesure", "--control", "A=a.tif"], "unmix: unknown command 'mesure'; did you mean 'measure'?"),
+])
+def test_a_misspelt_option_is_named_with_a_suggestion(tmp_path, argv, message):
+    run = subprocess.run([sys.executable, "-m", "unmix.cli", *argv], capture_output=True, text=True, cwd=tmp_path)
+    assert run.returncode == 2 and run.stdout == ""
+    assert run.stderr.strip().splitlines() == [f"error: {message}"]
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_values_that_look_like_options_are_left_to_their_option(files, tmp_path):
+    # A negative number is a value, and a unique prefix still works (argparse's own rules).
+    run = _run("coloc", files["pond"], "--matrix", Path(files["out"]).parent / "coloc_matrix.json", "--labels",
+               "Pondpetal,Emberin", "--min-r", "-0.2", "--round", "19", "--json", tmp_path / "c.json", "--quiet")
+    assert run.returncode == 0, run.stderr
+    assert json.loads((tmp_path / "c.json").read_text())["min_r"] == -0.2
+
+
+def test_measure_prints_each_qc_warning_once(files, tmp_path):
+    run = _run("measure", "--control", f"Fernlight={files['fern']}", "--primary", "Fernlight=orange600",
+               "--bootstrap", "200", "-o", tmp_path / "m.json")
+    assert run.returncode == 0, run.stderr
+    said = [line for line in (run.stdout + run.stderr).splitlines() if "not the brightest" in line]
+    assert len(said) == 1 and said[0].startswith("warning: ")
+
+
+def test_a_short_option_may_carry_its_value(files, tmp_path):
+    run = _run("measure", "--control", f"Fernlight={files['fern']}", "--bootstrap", "200", f"-o{tmp_path / 'm.json'}",
+               "--quiet")
+    assert run.returncode == 0, run.stderr
+    assert (tmp_path / "m.json").exists()

@@ -19,10 +19,12 @@ def test_generator_reproduces_the_shipped_stacks(tmp_path, demo):
     # Seeded and deterministic: regenerating gives the shipped pixels.
     generate(tmp_path)
     shipped = Path(demo["sample"]).parent
-    for name in ["control_Cobaltin_field1.ome.tif", "unstained.ome.tif", "dark.ome.tif", "sample.ome.tif",
-                 "sample_truth.ome.tif"]:
+    for name in ["control_Pondpetal_field1.ome.tif", "control_Emberin_field3.ome.tif", "unstained.ome.tif",
+                 "dark.ome.tif", "sample.ome.tif", "sample_truth.ome.tif", "sample_stack.ome.tif",
+                 "sample_stack_truth.ome.tif"]:
         new, old = read_image(tmp_path / name), read_image(shipped / name)
         assert new.channel_names == old.channel_names
+        assert new.axes == old.axes and new.pixel_size == old.pixel_size
         np.testing.assert_allclose(new.data.astype(float), old.data.astype(float), atol=1.0)
     assert json.loads((tmp_path / "truth.json").read_text()) == json.loads(demo["truth"].read_text())
 
@@ -51,6 +53,46 @@ def test_demo_has_a_falsely_and_a_truly_overlapping_pair(demo):
     assert pearsonr(true_abundance(a), true_abundance(b))[0] > 0.3
 
 
+def test_demo_ships_three_control_fields_per_label_and_a_z_stack(demo):
+    # Three fields per label: the matrix intervals then cover how fields differ (random effects).
+    assert all(len(paths) == 3 and all(Path(p).exists() for p in paths) for paths in demo["controls"].values())
+    stack = read_image(demo["sample_stack"])
+    truth = read_image(Path(demo["sample_stack"]).with_name("sample_stack_truth.ome.tif"))
+    assert stack.axes == "CZYX" and stack.data.shape == (3, 8, 128, 128) and stack.pixel_size["Z"] > 0
+    assert truth.data.shape == stack.data.shape and truth.channel_names == tuple(json.loads(
+        demo["truth"].read_text())["labels"])
+    # The same two pairs as the plane, in 3-D over the voxels (reference: scipy.stats.pearsonr).
+    from scipy.stats import pearsonr
+
+    pairs = json.loads(demo["truth"].read_text())["pairs"]
+    labels = list(truth.channel_names)
+    values = truth.data.astype(float)
+
+    def r(pair):
+        return pearsonr(values[labels.index(pair[0])].ravel(), values[labels.index(pair[1])].ravel())[0]
+
+    assert abs(r(pairs["independent_but_bleeding"])) < 0.1 and r(pairs["truly_overlapping"]) > 0.3
+    # Every plane holds structure of every label (a stack, not one plane and empty ones).
+    assert np.all(values.reshape(3, 8, -1).max(axis=2) > 0)
+
+
+def test_demo_runs_twice_in_a_row_into_one_folder(tmp_path):
+    # A rerun replaces the demo's own results and leaves other files alone (a real process, as a
+    # user runs it).
+    folder = tmp_path / "demo"
+    folder.mkdir()
+    (folder / "notes.txt").write_text("mine")
+    runs = [subprocess.run([sys.executable, "-m", "unmix.cli", "demo", "-o", str(folder)], capture_output=True,
+                           text=True) for _ in range(2)]
+    for run in runs:
+        assert run.returncode == 0 and "error" not in run.stderr, run.stderr
+        assert "Report:" in run.stdout
+    assert (folder / "notes.txt").read_text() == "mine"
+    assert not [p for p in folder.rglob("*") if ".partial" in p.name]
+    unmixed = read_image(folder / "unmixed" / "sample.unmixed.ome.tif")
+    assert unmixed.channel_names == ("Pondpetal", "Fernlight", "Emberin")
+
+
 def test_run_demo_writes_results(tmp_path, capsys):
     result = run_demo(tmp_path / "out")
     assert result["matrix"].exists() and result["csv"].exists()
@@ -63,11 +105,11 @@ def test_run_demo_writes_results(tmp_path, capsys):
     assert result["likely_channel"] == "orange600"
     disagreeing = {key for key, verdict in result["verdicts"].items() if verdict in ("higher", "lower")}
     assert disagreeing and all(channel == "orange600" for channel, _ in disagreeing)
-    assert result["verdicts"][("green525", "Cobaltin")] == "agrees"
+    assert result["verdicts"][("green525", "Pondpetal")] == "agrees"
     assert (result["compare"] / "compare.json").exists()
     # The demo's pairs: the independent one is flagged, the overlapping one is not.
     assert result["coloc"][("Fernlight", "Emberin")] == "bleed-through-only"
-    assert result["coloc"][("Cobaltin", "Emberin")] == "persists"
+    assert result["coloc"][("Pondpetal", "Emberin")] == "persists"
     assert result["report"].exists()
     # Run again into the same folder: the demo replaces its own results.
     assert run_demo(tmp_path / "out")["unmixed"].exists()

@@ -42,10 +42,10 @@ def test_axes_from_ome_metadata_are_put_in_canonical_order(tmp_path, stack):
 
 
 def test_hyperstack_tiff_axes(tmp_path):
-    # Reference: tifffile writes TZCYX hyperstack metadata (its "imagej" flavour of TIFF).
+    # Reference: tifffile writes TZCYX hyperstack metadata (its hyperstack flavour of TIFF).
     data = np.arange(2 * 3 * 2 * 8 * 9, dtype=np.uint16).reshape(2, 3, 2, 8, 9)
-    tifffile.imwrite(tmp_path / "ij.tif", data, imagej=True, metadata={"axes": "TZCYX"})
-    image = read_image(tmp_path / "ij.tif")
+    tifffile.imwrite(tmp_path / "hyperstack.tif", data, imagej=True, metadata={"axes": "TZCYX"})
+    image = read_image(tmp_path / "hyperstack.tif")
     assert image.axes == "TCZYX"
     np.testing.assert_array_equal(image.data, np.moveaxis(data, 2, 1))
 
@@ -137,7 +137,7 @@ def test_failed_write_leaves_nothing_behind(tmp_path, monkeypatch):
     assert list(tmp_path.iterdir()) == []
 
 
-@pytest.mark.parametrize("layout", ["ome-zcyx", "ome-tczyx", "imagej-tzcyx", "plain-cyx", "axes-override", "rgb",
+@pytest.mark.parametrize("layout", ["ome-zcyx", "ome-tczyx", "hyperstack-tzcyx", "plain-cyx", "axes-override", "rgb",
                                     "planar-cyx"])
 def test_read_block_equals_the_lazy_array(tmp_path, layout):
     # Reference: tifffile's own reading of the whole series (through read_images), for page
@@ -155,7 +155,7 @@ def test_read_block_equals_the_lazy_array(tmp_path, layout):
     elif layout == "ome-tczyx":
         tifffile.imwrite(path, rng.random((2, 3, 4, 16, 20), dtype=np.float32), ome=True,
                          metadata={"axes": "TCZYX", "Channel": {"Name": ["a", "b", "c"]}})
-    elif layout == "imagej-tzcyx":
+    elif layout == "hyperstack-tzcyx":
         tifffile.imwrite(path, rng.integers(0, 255, (2, 4, 3, 16, 20), dtype=np.uint8), imagej=True,
                          metadata={"axes": "TZCYX"})
     elif layout == "plain-cyx":

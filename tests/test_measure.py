@@ -75,7 +75,7 @@ def test_interval_coverage_on_dim_controls(scenario):
     # (binomial range, n = 100, p = 0.95). Dim controls: the naive estimator
     # (threshold and fit on the noisy primary) is biased low there.
     settings = MeasureSettings(n_boot=400, block_size=16, seed=1)
-    label, channel = "Cobaltin", 1
+    label, channel = "Pondpetal", 1
     true = scenario.true_matrix()[channel, scenario.labels.index(label)]
     covered, ours, naive = 0, [], []
     dark = Image(np.full((3, 8, 8), 100, np.uint16), "CYX", tuple(scenario.channels))
@@ -109,39 +109,39 @@ def test_estimated_background_without_references(demo, scenario):
 
 
 def test_channels_in_another_order_are_matched_by_name(scenario):
-    a = make_control(scenario, "Cobaltin", 1)
+    a = make_control(scenario, "Pondpetal", 1)
     b = make_control(scenario, "Fernlight", 2)
     reordered = Image(b.data[::-1].copy(), "CYX", b.channel_names[::-1])
-    straight = measure_matrix({"Cobaltin": [a], "Fernlight": [b]}, settings=FAST)
-    matched = measure_matrix({"Cobaltin": [a], "Fernlight": [reordered]}, settings=FAST)
+    straight = measure_matrix({"Pondpetal": [a], "Fernlight": [b]}, settings=FAST)
+    matched = measure_matrix({"Pondpetal": [a], "Fernlight": [reordered]}, settings=FAST)
     np.testing.assert_allclose(matched.matrix, straight.matrix)
 
 
 def test_controls_may_differ_in_size(scenario):
-    a = make_control(scenario, "Cobaltin", 1, shape=(128, 160))
-    b = make_control(scenario, "Cobaltin", 2, shape=(96, 96))
-    matrix = measure_matrix({"Cobaltin": [a, b]}, settings=FAST)
-    assert matrix.qc["labels"]["Cobaltin"]["fields"] == 2
+    a = make_control(scenario, "Pondpetal", 1, shape=(128, 160))
+    b = make_control(scenario, "Pondpetal", 2, shape=(96, 96))
+    matrix = measure_matrix({"Pondpetal": [a, b]}, settings=FAST)
+    assert matrix.qc["labels"]["Pondpetal"]["fields"] == 2
 
 
 def test_different_channel_names_refused(scenario):
-    a = make_control(scenario, "Cobaltin", 1)
+    a = make_control(scenario, "Pondpetal", 1)
     b = make_control(scenario, "Fernlight", 2)
     renamed = Image(b.data, "CYX", ("x", "y", "z"), source="b.tif")
     with pytest.raises(InputError, match="b.tif.*same channels"):
-        measure_matrix({"Cobaltin": [a], "Fernlight": [renamed]}, settings=FAST)
+        measure_matrix({"Pondpetal": [a], "Fernlight": [renamed]}, settings=FAST)
 
 
 def test_nonfinite_pixels_refused_unless_allowed(scenario):
-    control = make_control(scenario, "Cobaltin", 1)
+    control = make_control(scenario, "Pondpetal", 1)
     data = control.data.astype(np.float32)
     data[1, 5:8, 5:8] = np.nan
     data[0, 40, 40] = np.inf
     image = Image(data, "CYX", control.channel_names, source="nan.tif")
     with pytest.raises(InputError, match="nan.tif.*--allow-nonfinite"):
-        measure_matrix({"Cobaltin": [image]}, settings=FAST)
-    matrix = measure_matrix({"Cobaltin": [image]}, allow_nonfinite=True, settings=FAST)
-    assert matrix.qc["labels"]["Cobaltin"]["nonfinite_pixels"] == 10
+        measure_matrix({"Pondpetal": [image]}, settings=FAST)
+    matrix = measure_matrix({"Pondpetal": [image]}, allow_nonfinite=True, settings=FAST)
+    assert matrix.qc["labels"]["Pondpetal"]["nonfinite_pixels"] == 10
 
 
 def _with_saturation(control, fraction, rng):
@@ -155,20 +155,20 @@ def _with_saturation(control, fraction, rng):
 
 def test_saturated_primary_warns_then_refuses(scenario):
     rng = np.random.default_rng(2)
-    control = make_control(scenario, "Cobaltin", 3, shape=(160, 160))
+    control = make_control(scenario, "Pondpetal", 3, shape=(160, 160))
     with pytest.warns(InputWarning, match="saturated"):
-        measure_matrix({"Cobaltin": [_with_saturation(control, 0.05, rng)]}, settings=FAST)
+        measure_matrix({"Pondpetal": [_with_saturation(control, 0.05, rng)]}, settings=FAST)
     with pytest.raises(InputError, match="sat.tif.*saturated"):
-        measure_matrix({"Cobaltin": [_with_saturation(control, 0.6, rng)]}, settings=FAST)
+        measure_matrix({"Pondpetal": [_with_saturation(control, 0.6, rng)]}, settings=FAST)
 
 
 def test_saturated_pixels_are_excluded_from_the_fit(scenario):
     rng = np.random.default_rng(3)
-    control = make_control(scenario, "Cobaltin", 4, shape=(160, 160))
-    clean = measure_matrix({"Cobaltin": [control]}, settings=FAST)
+    control = make_control(scenario, "Pondpetal", 4, shape=(160, 160))
+    clean = measure_matrix({"Pondpetal": [control]}, settings=FAST)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InputWarning)
-        dirty = measure_matrix({"Cobaltin": [_with_saturation(control, 0.1, rng)]}, settings=FAST)
+        dirty = measure_matrix({"Pondpetal": [_with_saturation(control, 0.1, rng)]}, settings=FAST)
     np.testing.assert_allclose(dirty.matrix, clean.matrix, atol=0.01)
     assert dirty.saturation[0] == 4095
 
@@ -189,9 +189,9 @@ def test_primary_override_that_is_not_brightest_warns(scenario):
 
 
 def test_file_given_twice_refused(demo):
-    path = demo["controls"]["Cobaltin"][0]
+    path = demo["controls"]["Pondpetal"][0]
     with pytest.raises(InputError, match="given twice"):
-        measure_files({"Cobaltin": [path], "Emberin": [path]}, settings=FAST)
+        measure_files({"Pondpetal": [path], "Emberin": [path]}, settings=FAST)
 
 
 def test_bootstrap_is_reproducible(scenario):

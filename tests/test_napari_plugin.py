@@ -16,12 +16,12 @@ if not os.environ.get("CI"):  # in CI these tests must run: a missing napari or 
     pytest.importorskip("napari")
     if not os.environ.get("DISPLAY"):
         pytest.skip("no screen: run under xvfb-run (./dev.sh test does)", allow_module_level=True)
-import napari  # noqa: E402
+import napari  # noqa: E402, F401  (imported so that CI fails at once when napari is missing)
 
 from unmix.measure.controls import MeasureSettings, measure_matrix  # noqa: E402
 from unmix.engine.solver import Unmixer  # noqa: E402
 from unmix_napari import layers  # noqa: E402
-from unmix_napari.layers import SESSION_MATRIX, layer_image, session  # noqa: E402
+from unmix_napari.layers import SESSION_MATRIX, channel_groups, layer_image, session  # noqa: E402
 from unmix_napari.measure_widget import MeasureWidget  # noqa: E402
 from unmix_napari.overlap_widget import OverlapWidget  # noqa: E402
 from unmix_napari.prediction_widget import PredictionWidget  # noqa: E402
@@ -55,17 +55,30 @@ def _screenshot(viewer, widget, name):
 
     for _ in range(5):  # let Qt lay the docked widget out before the picture is taken
         QApplication.processEvents()
+    viewer.reset_view()
     ARTIFACTS.mkdir(exist_ok=True)
     path = ARTIFACTS / f"napari_{name.lower().replace(' ', '_')}.png"
     viewer.screenshot(str(path), canvas_only=False)
     assert path.stat().st_size > 10_000
 
 
+def _screenshot_viewer(viewer, name):
+    viewer.window._qt_window.resize(1500, 1050)
+    from qtpy.QtWidgets import QApplication
+
+    for _ in range(5):
+        QApplication.processEvents()
+    viewer.reset_view()
+    ARTIFACTS.mkdir(exist_ok=True)
+    viewer.screenshot(str(ARTIFACTS / name), canvas_only=False)
+    assert (ARTIFACTS / name).stat().st_size > 10_000
+
+
 def _measured(qtbot, viewer):
     widget = MeasureWidget(viewer)
-    # Both fields of each label, as two rows with the same label name.
-    widget.set_controls({label: [f"control {label} 1", f"control {label} 2"] for label in ("Cobaltin", "Fernlight",
-                                                                                           "Emberin")})
+    # The three fields of each label, as three rows with the same label name.
+    widget.set_controls({label: [f"control {label} {field}" for field in (1, 2, 3)]
+                         for label in ("Pondpetal", "Fernlight", "Emberin")})
     widget.unstained.setCurrentText("unstained")
     widget.bootstrap.setValue(200)
     widget.measure()
@@ -73,16 +86,36 @@ def _measured(qtbot, viewer):
     return widget
 
 
-def test_sample_data_and_plugin_manifest(viewer):
+def _sample(viewer):
+    """The demo sample (C, Y, X), from its channel layers."""
+    return np.asarray(layer_image(channel_groups(viewer)["sample"]).data)
+
+
+def test_sample_opens_as_one_layer_per_channel_named_and_coloured_by_it(viewer):
     names = [layer.name for layer in viewer.layers]
-    assert "sample" in names and "control Fernlight 1" in names and "unstained" in names
-    assert viewer.layers["sample"].metadata["channel_names"] == ["blue450", "green525", "orange600"]
+    assert "control Fernlight 3" in names and "unstained" in names and "sample" not in names
+    channels = ["blue450", "green525", "orange600"]
+    layers = [viewer.layers[f"sample {channel}"] for channel in channels]
+    assert [layer.metadata["channel_names"] for layer in layers] == [[c] for c in channels]
+    assert all(layer.visible and layer.blending == "additive" and layer.data.ndim == 2 for layer in layers)
+    assert not any(viewer.layers[n].visible for n in names if n.startswith(("control", "unstained", "dark")))
+    # Each channel in its own hue, the hue of the wavelength in its name: 450 nm blue, 525 nm green,
+    # 600 nm orange (red above green, no blue), as any wavelength-to-colour table has them (from memory).
+    tops = [np.asarray(layer.colormap.colors)[-1, :3] for layer in layers]
+    assert np.argmax(tops[0]) == 2 and np.argmax(tops[1]) == 1 and tops[2][0] > tops[2][1] > tops[2][2] == 0
+    # The channel layers are the shipped sample's channels (tifffile reads the file independently).
+    import tifffile
+
+    from unmix.demo import demo_inputs
+
+    np.testing.assert_array_equal(_sample(viewer), tifffile.imread(demo_inputs()["sample"]))
+    _screenshot_viewer(viewer, "napari_demo_sample_composite.png")
 
 
 def test_measure_widget_equals_the_library(qtbot, viewer, errors):
     widget = _measured(qtbot, viewer)
-    controls = {label: [layer_image(viewer.layers[f"control {label} {field}"]) for field in (1, 2)]
-                for label in ("Cobaltin", "Fernlight", "Emberin")}
+    controls = {label: [layer_image(viewer.layers[f"control {label} {field}"]) for field in (1, 2, 3)]
+                for label in ("Pondpetal", "Fernlight", "Emberin")}
     reference = measure_matrix(controls, unstained=layer_image(viewer.layers["unstained"]),
                                settings=MeasureSettings(n_boot=200))
     np.testing.assert_allclose(widget.matrix.matrix, reference.matrix)
@@ -93,24 +126,29 @@ def test_measure_widget_equals_the_library(qtbot, viewer, errors):
 
 
 def test_unmix_and_overlap_widgets(qtbot, viewer, errors, tmp_path):
-    matrix = _measured(qtbot, viewer).matrix
+    # Opened before the measurement, as a user docks all widgets first: the overlap widget fills its
+    # label boxes when the matrix appears, and both widgets start on the sample, not a control.
+    overlap = OverlapWidget(viewer)
     unmix = UnmixWidget(viewer)
-    unmix.image.setCurrentText("sample")
+    assert overlap.label_a.count() == 0
+    assert unmix.image.currentText() == overlap.raw.currentText() == "sample"
+    matrix = _measured(qtbot, viewer).matrix
+    assert [overlap.label_a.itemText(i) for i in range(overlap.label_a.count())] == list(matrix.labels)
+    assert (overlap.label_a.currentText(), overlap.label_b.currentText()) == matrix.labels[:2]
     unmix.matrix_source.setCurrentText(SESSION_MATRIX)
     unmix.unmix()
     qtbot.waitUntil(lambda: not unmix.runner.busy and "Emberin (unmixed)" in viewer.layers, timeout=WAIT_MS)
-    expected = Unmixer(matrix.matrix).unmix(np.asarray(viewer.layers["sample"].data), matrix.background)
+    expected = Unmixer(matrix.matrix).unmix(_sample(viewer), matrix.background)
     for k, label in enumerate(matrix.labels):
         np.testing.assert_array_equal(viewer.layers[f"{label} (unmixed)"].data, expected[k])
-    assert "saturated (sample)" in viewer.layers
-    assert isinstance(viewer.layers["saturated (sample)"], napari.layers.Labels)
+    # The demo sample saturates nowhere: no empty saturation layer.
+    assert not (_sample(viewer) >= matrix.saturation[:, None, None]).any()
+    assert not [layer for layer in viewer.layers if layer.name.startswith("saturated")]
+    assert not any(viewer.layers[f"sample {c}"].visible for c in matrix.channels)  # the unmixed composite alone
     _screenshot(viewer, unmix, "Unmix")
 
-    overlap = OverlapWidget(viewer)
-    overlap.refresh_labels()
     overlap.label_a.setCurrentText("Fernlight")
     overlap.label_b.setCurrentText("Emberin")
-    overlap.raw.setCurrentText("sample")
     overlap.rounds.setValue(199)
     overlap.compute()
     qtbot.waitUntil(lambda: not overlap.runner.busy and overlap.result is not None, timeout=WAIT_MS)
@@ -118,7 +156,7 @@ def test_unmix_and_overlap_widgets(qtbot, viewer, errors, tmp_path):
     assert "bleed-through-only" in overlap.verdict.text() and overlap.verdict.text().startswith("✗")
     assert overlap.canvas is not None and not errors
     # Editing the mask recomputes: paint a labels layer and wait for a new result.
-    mask = viewer.add_labels(np.zeros(viewer.layers["sample"].data.shape[1:], np.uint8), name="cells")
+    mask = viewer.add_labels(np.zeros(viewer.layers["sample blue450"].data.shape, np.uint8), name="cells")
     overlap.mask.setCurrentText("cells")
     first = overlap.result
     mask.data = np.pad(np.ones((200, 200), np.uint8), ((50, 134), (50, 134)))
@@ -126,12 +164,67 @@ def test_unmix_and_overlap_widgets(qtbot, viewer, errors, tmp_path):
     assert overlap.result.pixels <= 200 * 200
     _screenshot(viewer, overlap, "Overlap review")
 
-    # The writer contribution: the unmixed layers as one OME-TIFF, channels named by label.
+    # The writer contribution: the unmixed layers as one OME-TIFF whose channels are the labels,
+    # which the command line takes as the unmixed image of the sample (a real process).
+    import subprocess
+    import sys
+
+    from unmix.demo import demo_inputs
     from unmix.io.images import read_image
 
     viewer.layers.selection = {viewer.layers[f"{label} (unmixed)"] for label in matrix.labels}
     written = viewer.layers.save(str(tmp_path / "unmixed.ome.tif"), selected=True, plugin="unmix")
-    assert written and read_image(tmp_path / "unmixed.ome.tif").n_channels == 3
+    assert written and read_image(tmp_path / "unmixed.ome.tif").channel_names == matrix.labels
+    matrix.save(tmp_path / "m.json")
+    run = subprocess.run([sys.executable, "-m", "unmix.cli", "coloc", str(demo_inputs()["sample"]), "--matrix",
+                          str(tmp_path / "m.json"), "--labels", "Fernlight,Emberin", "--unmixed",
+                          str(tmp_path / "unmixed.ome.tif"), "--rounds", "19", "--quiet"],
+                         capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+
+
+def test_saturated_pixels_get_a_labels_layer_only_when_there_are_some(qtbot, make_napari_viewer, errors, tmp_path):
+    viewer = make_napari_viewer()
+    _matrix_file(tmp_path, saturation=np.full(3, 4095.0))
+    rng = np.random.default_rng(0)
+    plane = rng.integers(100, 3000, (3, 32, 32)).astype(np.uint16)
+    plane[1, 5:8, 5:8] = 4095
+    viewer.add_image(plane, name="img", metadata={"channel_names": ["blue450", "green525", "orange600"]})
+    unmix = UnmixWidget(viewer)
+    unmix.image.setCurrentText("img")
+    unmix.matrix_source.setCurrentText("file")
+    unmix.matrix_path.setText(str(tmp_path / "m.json"))
+    unmix.unmix()
+    qtbot.waitUntil(lambda: not unmix.runner.busy and "saturated (img)" in viewer.layers, timeout=WAIT_MS)
+    assert int(viewer.layers["saturated (img)"].data.sum()) == 9
+    viewer.layers["img"].data = np.minimum(plane, 4000)  # the same layer, now without saturation
+    unmix.unmix()
+    qtbot.waitUntil(lambda: not unmix.runner.busy and "saturated (img)" not in viewer.layers, timeout=WAIT_MS)
+    assert not errors
+
+
+def test_docked_widgets_are_tabs_and_the_image_keeps_its_room(viewer, qtbot):
+    # Opened from the Plugins menu, as a user does (napari's own docking): the four widgets become
+    # tabs of one dock, so the canvas keeps most of the window's width.
+    from qtpy.QtWidgets import QApplication, QDockWidget
+
+    window = viewer.window._qt_window
+    window.resize(1500, 1050)
+    names = ["Measure bleed-through", "Unmix", "Overlap review", "Predicted leakage"]
+    docks = [viewer.window.add_plugin_dock_widget("unmix", name)[0] for name in names]
+    for _ in range(10):
+        QApplication.processEvents()
+        qtbot.wait(20)
+    assert all(isinstance(dock, QDockWidget) for dock in docks)
+    tabbed = {d for d in window.tabifiedDockWidgets(docks[0])}
+    assert tabbed == set(docks[1:])
+    viewer.reset_view()
+    ARTIFACTS.mkdir(exist_ok=True)
+    viewer.screenshot(str(ARTIFACTS / "napari_four_widgets_docked.png"), canvas_only=False)
+    # Stacked one under another they left the canvas about a quarter of the window (384 of 1500 px
+    # here); as tabs it keeps more than the dock takes, beside napari's own layer docks.
+    canvas = viewer.window._qt_viewer.canvas.native
+    assert canvas.width() >= 0.45 * window.width() and canvas.width() > 1.3 * docks[0].width()
 
 
 def test_prediction_widget_compares_with_the_measured_matrix(qtbot, viewer, errors):
@@ -157,7 +250,7 @@ def test_matrix_reader_gives_a_matrix_source(qtbot, viewer, errors, tmp_path):
     unmix.matrix_source.setCurrentText("matrix m.json")
     unmix.unmix()
     qtbot.waitUntil(lambda: not unmix.runner.busy, timeout=WAIT_MS)
-    assert "Cobaltin (unmixed)" in viewer.layers and not errors
+    assert "Pondpetal (unmixed)" in viewer.layers and not errors
 
 
 def test_bad_input_becomes_a_notification(qtbot, make_napari_viewer, errors):
@@ -210,12 +303,13 @@ def test_unmix_widget_keeps_dask_layers_lazy(qtbot, make_napari_viewer, errors, 
     np.testing.assert_array_equal(np.asarray(layer.data), expected[1])
 
 
-def _matrix_file(folder):
+def _matrix_file(folder, saturation=None):
     from unmix.matrix import BleedThroughMatrix
 
     values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
     return BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"),
-                              labels=("Cobaltin", "Fernlight", "Emberin"),
-                              primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+                              labels=("Pondpetal", "Fernlight", "Emberin"),
+                              primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                               matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
-                              background=np.full(3, 100.0), background_source="dark").save(folder / "m.json")
+                              background=np.full(3, 100.0), background_source="dark",
+                              saturation=saturation).save(folder / "m.json")

@@ -11,7 +11,7 @@ from scipy import integrate
 
 from unmix.optics import spectra
 from unmix.optics.comparison import compare
-from unmix.errors import InputError
+from unmix.errors import InputError, InputWarning
 from unmix.matrix import BleedThroughMatrix
 from unmix.optics.description import load_description
 from unmix.optics.prediction import predict, rank_setups
@@ -114,19 +114,41 @@ def test_shared_laser_counts_once_in_simultaneous_mode(tmp_path):
     np.testing.assert_allclose(prediction.excitation[1], own_g, rtol=1e-12)
 
 
-def test_tracks_generalise_both_modes(tmp_path):
-    text = _write(tmp_path).read_text().replace('acquisition = "simultaneous"', 'acquisition = "tracks"')
-    separate = tmp_path / "separate.toml"
-    separate.write_text(text.replace('exposure = 1.5', 'exposure = 1.5\ntrack = "one"').replace(
-        'gain = 2.0', 'gain = 2.0\ntrack = "two"'))
-    together = tmp_path / "together.toml"
-    together.write_text(text.replace('exposure = 1.5', 'exposure = 1.5\ntrack = "t"').replace(
-        'gain = 2.0', 'gain = 2.0\ntrack = "t"'))
+def _grouped(tmp_path, groups, mode="grouped", key="group"):
+    """The two-channel description imaged in groups: channel g in groups[0], channel o in groups[1]."""
+    text = _write(tmp_path).read_text().replace('acquisition = "simultaneous"', f'acquisition = "{mode}"')
+    path = tmp_path / f"{mode}-{key}-{'-'.join(groups)}.toml"
+    path.write_text(text.replace('exposure = 1.5', f'exposure = 1.5\n{key} = "{groups[0]}"').replace(
+        'gain = 2.0', f'gain = 2.0\n{key} = "{groups[1]}"'))
+    return path
+
+
+def test_grouped_acquisition_generalises_both_modes(tmp_path):
     base = load_description(_write(tmp_path))
-    np.testing.assert_allclose(predict(load_description(separate)).matrix.matrix,
+    np.testing.assert_allclose(predict(load_description(_grouped(tmp_path, ("one", "two")))).matrix.matrix,
                                predict(base, "sequential").matrix.matrix, rtol=1e-12)
-    np.testing.assert_allclose(predict(load_description(together)).matrix.matrix,
+    np.testing.assert_allclose(predict(load_description(_grouped(tmp_path, ("t", "t")))).matrix.matrix,
                                predict(base, "simultaneous").matrix.matrix, rtol=1e-12)
+
+
+def test_files_with_the_earlier_names_of_grouping_are_read_with_one_warning(tmp_path):
+    # acquisition = "tracks" and a channel's "track" were this tool's earlier names: a file that
+    # uses them predicts what the renamed file predicts, and the command line says so once.
+    import subprocess
+    import sys
+
+    old, new = _grouped(tmp_path, ("t", "t"), "tracks", "track"), _grouped(tmp_path, ("t", "t"))
+    with pytest.warns(InputWarning, match="rename them"):
+        old_description = load_description(old)
+    assert old_description.acquisition == "grouped" and [c.group for c in old_description.channels] == ["t", "t"]
+    np.testing.assert_array_equal(predict(old_description).matrix.matrix, predict(load_description(new)).matrix.matrix)
+    run = subprocess.run([sys.executable, "-m", "unmix.cli", "predict", "--config", str(old), "-o",
+                          str(tmp_path / "p.json"), "--quiet"], capture_output=True, text=True)
+    assert run.returncode == 0 and run.stderr.count("warning:") == 1 and "'group'" in run.stderr, run.stderr
+    both = tmp_path / "both.toml"
+    both.write_text(new.read_text().replace('group = "t"', 'group = "t"\ntrack = "t"', 1))
+    with pytest.raises(InputError, match="both 'group' and 'track'"):
+        load_description(both)
 
 
 def test_flat_power_source_weights_long_wavelengths_by_photon_energy(tmp_path):
@@ -232,3 +254,37 @@ def test_label_invisible_everywhere_is_refused(tmp_path):
         "peak_nm = 590, fwhm_nm = 50", "peak_nm = 950, fwhm_nm = 20"))
     with pytest.raises(InputError, match="'B' gives no signal"):
         predict(load_description(path))
+
+
+def test_catalogue_shapes_predict_from_the_command_line(tmp_path):
+    # Every catalogue shape loads and predicts (a real process); the far-red shape's emission
+    # peaks where the catalogue puts it (log-normal band: its maximum is its peak, Siano & Metzler
+    # 1969), at round family values, not a product's data-sheet values.
+    import subprocess
+    import sys
+    import tomllib
+
+    from unmix.io.shipped import shipped_dir
+
+    catalogue = shipped_dir("configs") / "label_shapes.toml"
+    shapes = tomllib.loads(catalogue.read_text())["label_shapes"]
+    red = shapes["generic-red"]
+    assert red["emission"]["peak_nm"] % 5 == 0 and red["excitation"]["peak_nm"] % 5 == 0
+    assert red["extinction"] % 10000 == 0
+    lasers = {"generic-violet": 405.0, "generic-green": 488.0, "generic-orange": 561.0, "generic-red": 640.0}
+    text = [HEAD.format(mode="sequential").replace('version = 1', f'version = 1\ninclude = ["{catalogue}"]')]
+    for name, laser in lasers.items():
+        peak = shapes[name]["emission"]["peak_nm"]
+        text.append(f'[[label]]\nname = "{name}"\nshape = "{name}"\n')
+        text.append(f'[[channel]]\nname = "c{int(laser)}"\nsource = {{ laser_nm = {laser}, power_mw = 1.0 }}\n'
+                    f'emission_filter = {{ band = "{peak + 10}/30" }}\n')
+    (tmp_path / "all.toml").write_text("\n".join(text))
+    run = subprocess.run([sys.executable, "-m", "unmix.cli", "predict", "--config", str(tmp_path / "all.toml"),
+                          "-o", str(tmp_path / "p.json")], capture_output=True, text=True)
+    assert run.returncode == 0 and run.stderr == "", run.stderr
+    primary = json.loads((tmp_path / "p.json").read_text())["primary"]
+    assert primary == {name: f"c{int(laser)}" for name, laser in lasers.items()}
+    description = load_description(tmp_path / "all.toml")
+    nm = description.grid.nm
+    emission = description.labels[list(lasers).index("generic-red")].emission(nm)
+    assert nm[np.argmax(emission)] == pytest.approx(red["emission"]["peak_nm"], abs=1.0)

@@ -31,8 +31,8 @@ KILL_POINTS = 20
 
 def _matrix(folder: Path, values=((1.0, 0.02, 0.0), (0.25, 1.0, 0.0), (0.02, 0.39, 1.0)), name="m.json") -> Path:
     values = np.array(values)
-    return BleedThroughMatrix(kind="measured", channels=tuple(CHANNELS), labels=("Cobaltin", "Fernlight", "Emberin"),
-                              primary={"Cobaltin": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
+    return BleedThroughMatrix(kind="measured", channels=tuple(CHANNELS), labels=("Pondpetal", "Fernlight", "Emberin"),
+                              primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                               matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
                               background=np.full(3, 100.0), background_source="dark",
                               saturation=np.full(3, 4095.0)).save(folder / name)
@@ -152,7 +152,7 @@ def test_two_runs_sharing_an_output_folder(tmp_path):
     _same_outputs(tmp_path / "clean", tmp_path / "shared", names)
     manifest = json.loads((tmp_path / "shared" / "unmix-manifest.json").read_text())
     assert len(manifest["outputs"]) == 4  # no entry lost to the other run
-    assert not list((tmp_path / "shared").glob(".*.partial"))
+    assert not list((tmp_path / "shared").glob(".*"))  # no temporary, no lock file left
 
 
 def test_same_inputs_and_seed_give_identical_results(tmp_path, demo):
@@ -271,7 +271,7 @@ def test_no_subcommand_modifies_its_inputs(tmp_path, demo):
         ["compare", str(matrix), str(tmp_path / "p.json"), "-o", str(tmp_path / "cmp")],
         ["plan", str(tmp_path / "demo_optics.toml")],
         ["apply", "--matrix", str(matrix), str(sample), "-o", str(tmp_path / "out")],
-        ["coloc", str(sample), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin", "--rounds", "19",
+        ["coloc", str(sample), "--matrix", str(matrix), "--labels", "Pondpetal,Emberin", "--rounds", "19",
          "--json", str(tmp_path / "c.json")],
         ["report", "--matrix", str(matrix), "--predicted", str(tmp_path / "p.json"), "--coloc",
          str(tmp_path / "c.json"), "-o", str(tmp_path / "r.html")],
@@ -682,7 +682,7 @@ def _full_disk_commands(tmp_path: Path, demo, disk: Path) -> dict:
         "predict": ["predict", "--config", str(description), "-o", str(disk / "p.json")],
         "compare": ["compare", str(measured), str(predicted), "-o", str(disk / "cmp")],
         "report": ["report", "--matrix", str(matrix), "-o", str(disk / "r.html")],
-        "coloc": ["coloc", str(demo["sample"]), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin",
+        "coloc": ["coloc", str(demo["sample"]), "--matrix", str(matrix), "--labels", "Pondpetal,Emberin",
                   "--rounds", "19", "--json", str(disk / "c.json")],
     }
 

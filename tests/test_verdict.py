@@ -285,7 +285,7 @@ def test_coloc_command_json_csv_and_objects(demo, demo_matrix_file, tmp_path, ca
     csv_path = tmp_path / "c.csv"
     capsys.readouterr()
     assert main(["coloc", str(sample), "--matrix", str(demo_matrix_file), "--labels", "Fernlight,Emberin",
-                 "--labels", "Cobaltin,Emberin", "--objects", str(tmp_path / "objects.tif"),
+                 "--labels", "Pondpetal,Emberin", "--objects", str(tmp_path / "objects.tif"),
                  "--rounds", "19", "--csv", str(csv_path)]) == 0
     rows = csv_path.read_text().splitlines()
     assert len(rows) == 1 + 2 * 3
@@ -300,7 +300,7 @@ def test_constant_channel_is_reported_as_undefined(demo_matrix_file, tmp_path, c
     path = tmp_path / "flat.ome.tif"
     tifffile.imwrite(path, data, ome=True, metadata={"axes": "CYX",
                                                      "Channel": {"Name": ["blue450", "green525", "orange600"]}})
-    assert main(["coloc", str(path), "--matrix", str(demo_matrix_file), "--labels", "Cobaltin,Fernlight",
+    assert main(["coloc", str(path), "--matrix", str(demo_matrix_file), "--labels", "Pondpetal,Fernlight",
                  "--rounds", "19", "--json", str(tmp_path / "o.json")]) == 0
     out = capsys.readouterr().out
     assert "undefined" in out and "nan" not in out.lower() and "constant" in out

@@ -8,6 +8,9 @@ import numpy as np
 
 MATRIX_METADATA = "unmix_matrix"
 CHANNEL_NAMES = "channel_names"
+# Layers that are the channels of one multichannel image carry its name under this key (and their
+# own channel's name under CHANNEL_NAMES); the widgets take the group as that image.
+CHANNEL_GROUP = "unmix_channel_group"
 
 
 def matrix_reader(path):
@@ -40,7 +43,10 @@ def write_unmixed(path, layer_data):
     from unmix.io.images import Image, write_ome_tiff
 
     data = np.stack([np.asarray(data, dtype=np.float32) for data, _, _ in layer_data])
-    names = tuple(meta.get("name", f"label{i}") for i, (_, meta, _) in enumerate(layer_data))
+    # A layer that is one channel (an unmixed label, a channel of a sample) is saved under that
+    # channel's name, so that the command line matches it (coloc --unmixed wants the labels).
+    names = tuple(meta.get("metadata", {}).get(CHANNEL_NAMES, [None])[0] or meta.get("name", f"label{i}")
+                  for i, (_, meta, _) in enumerate(layer_data))
     axes = "C" + "ZYX"[-(data.ndim - 1):] if data.ndim <= 4 else "CTZYX"[: data.ndim]
     provenance = {"written_by": "unmix napari plugin"}
     for _, meta, _ in layer_data:
@@ -51,8 +57,28 @@ def write_unmixed(path, layer_data):
     return [str(path)]
 
 
+def channel_layers(data, channel_names, group: str, metadata: dict | None = None) -> list:
+    """One layer per channel of a multichannel image (C, ...): named "GROUP CHANNEL", coloured by
+    the channel (:func:`unmix.report.style.channel_colour`), blended additively into a composite."""
+    from napari.utils.colormaps import Colormap
+
+    from unmix.report.style import channel_colour
+
+    layers = []
+    for c, channel in enumerate(channel_names):
+        plane = data[c]
+        colour = channel_colour(channel, c)
+        layers.append((plane, {
+            "name": f"{group} {channel}", "blending": "additive",
+            "colormap": Colormap([[0, 0, 0, 1], [*colour, 1]], name=f"{group} {channel}"),
+            "contrast_limits": (float(np.percentile(plane, 0.5)), float(np.percentile(plane, 99.8))),
+            "metadata": {**(metadata or {}), CHANNEL_GROUP: group, CHANNEL_NAMES: [channel]}}, "image"))
+    return layers
+
+
 def demo_layers():
-    """The demo scenario: each control, the unstained specimen and the sample as multichannel layers."""
+    """The demo scenario: the sample as one layer per channel (a composite), each control, the
+    unstained specimen and the dark frame as hidden multichannel layers for the Measure widget."""
     from unmix.demo import demo_inputs
     from unmix.io.images import read_image
 
@@ -60,10 +86,12 @@ def demo_layers():
     layers = []
     files = [(f"control {label} {i + 1}", path) for label, paths in inputs["controls"].items()
              for i, path in enumerate(paths)]
-    files += [("unstained", inputs["unstained"]), ("dark", inputs["dark"]), ("sample", inputs["sample"])]
+    files += [("unstained", inputs["unstained"]), ("dark", inputs["dark"])]
     for name, path in files:
         image = read_image(path)
         layers.append((np.asarray(image.data), {
-            "name": name, "visible": name == "sample", "colormap": "gray",
+            "name": name, "visible": False, "colormap": "gray",
             "metadata": {CHANNEL_NAMES: list(image.channel_names), "source": str(path)}}, "image"))
-    return layers
+    sample = read_image(inputs["sample"])
+    return layers + channel_layers(np.asarray(sample.data), sample.channel_names, "sample",
+                                   {"source": str(inputs["sample"])})

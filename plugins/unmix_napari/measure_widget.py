@@ -6,14 +6,14 @@ import warnings
 
 from napari.utils.notifications import show_info
 from qtpy.QtWidgets import (QFileDialog, QFormLayout, QLabel, QLineEdit, QPlainTextEdit, QPushButton, QSpinBox,
-                            QTableWidget, QVBoxLayout, QWidget)
+                            QTableWidget, QVBoxLayout)
 
 from unmix.report.summary import matrix_rows
 
-from .layers import LayerChoice, Worker, fill_table, guarded, layer_image, notify_error, session
+from .layers import LayerChoice, Panel, Worker, fill_table, guarded, layer_image, notify_error, set_matrix
 
 
-class MeasureWidget(QWidget):
+class MeasureWidget(Panel):
     """Pick a control layer per label (and an unstained or dark layer), measure, review, save."""
 
     def __init__(self, napari_viewer):
@@ -21,9 +21,11 @@ class MeasureWidget(QWidget):
         self.viewer = napari_viewer
         self.runner = Worker()
         self.matrix = None
-        layout = QVBoxLayout(self)
-        layout.addWidget(QLabel("Single-label controls: a label name and a control layer per row "
-                                "(several rows with one label are several fields of it)"))
+        layout = QVBoxLayout(self.body)
+        intro = QLabel("Single-label controls: a label name and a control layer per row (several rows with one "
+                       "label are several fields of it)")
+        intro.setWordWrap(True)
+        layout.addWidget(intro)
         self.rows_layout = QFormLayout()
         layout.addLayout(self.rows_layout)
         self.rows = []
@@ -109,12 +111,15 @@ class MeasureWidget(QWidget):
     def _show(self, result):
         matrix, messages = result
         self.matrix = matrix
-        session(self.viewer).matrix = matrix
         fill_table(self.table, ["channel \\ label", *matrix.labels], matrix_rows(matrix))
         lines = [f"Condition number {matrix.condition_number():.2f}; noise penalty "
                  + ", ".join(f"{label} {p:.2f}" for label, p in zip(matrix.labels, matrix.noise_penalty()))]
-        lines += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])] + [f"warning: {m}" for m in messages]
+        flags = matrix.qc.get("flags", [])
+        # Each flag was also a warning of the measurement: say it once.
+        lines += [f"QC: {flag}" for flag in flags] + [f"warning: {m}" for m in dict.fromkeys(messages)
+                                                       if m not in flags]
         self.messages.setPlainText("\n".join(lines))
+        set_matrix(self.viewer, matrix)
         show_info("bleed-through matrix measured; the Unmix and Overlap widgets use it")
 
     def _ask_save(self, *_):

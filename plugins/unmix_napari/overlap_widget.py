@@ -5,14 +5,16 @@ from __future__ import annotations
 import numpy as np
 from napari.layers import Image as ImageLayer
 from napari.layers import Labels as LabelsLayer
-from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout, QWidget
+from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout
 
 from unmix.coloc.verdict import ROUNDS
+from unmix.report.style import VERDICT_LOOK
 
-from .layers import NONE, VERDICT_LOOK, LayerChoice, Worker, fill_table, guarded, layer_image, session
+from .layers import (NONE, LayerChoice, Panel, Worker, default_image, fill_table, guarded, layer_image, narrow,
+                     session)
 
 
-class OverlapWidget(QWidget):
+class OverlapWidget(Panel):
     """Two labels: coefficients before and after unmixing side by side, the verdict, the histograms."""
 
     def __init__(self, napari_viewer):
@@ -21,12 +23,11 @@ class OverlapWidget(QWidget):
         self.runner = Worker()
         self.result = None
         self._watched = None
-        self.setMinimumWidth(600)
-        layout = QVBoxLayout(self)
+        layout = QVBoxLayout(self.body)
         form = QFormLayout()
-        self.label_a, self.label_b = QComboBox(), QComboBox()
-        self.raw = LayerChoice(napari_viewer)
-        self.mask = LayerChoice(napari_viewer, types=(LabelsLayer, ImageLayer), optional=True)
+        self.label_a, self.label_b = narrow(QComboBox()), narrow(QComboBox())
+        self.raw = LayerChoice(napari_viewer, prefer=lambda: default_image(self.viewer))
+        self.mask = LayerChoice(napari_viewer, types=(LabelsLayer, ImageLayer), optional=True, groups=False)
         self.rounds = QSpinBox()
         self.rounds.setRange(19, 9999)
         self.rounds.setValue(ROUNDS)
@@ -36,9 +37,6 @@ class OverlapWidget(QWidget):
         form.addRow("Mask (optional)", self.mask)
         form.addRow("Randomisation rounds", self.rounds)
         layout.addLayout(form)
-        refresh = QPushButton("Use the labels of the current matrix")
-        refresh.clicked.connect(lambda *_: self.refresh_labels())
-        layout.addWidget(refresh)
         self.button = QPushButton("Measure overlap before and after")
         self.button.clicked.connect(self.compute)
         layout.addWidget(self.button)
@@ -52,10 +50,12 @@ class OverlapWidget(QWidget):
         layout.addLayout(self.canvas_holder)
         self.canvas = None
         self.mask.currentTextChanged.connect(self._watch_mask)
+        # The label boxes follow the session's matrix: filled now, and again whenever it changes.
+        session(napari_viewer).matrix_listeners.append(self.refresh_labels)
         self.refresh_labels()
 
-    def refresh_labels(self):
-        matrix = session(self.viewer).matrix
+    def refresh_labels(self, matrix=None):
+        matrix = matrix if matrix is not None else session(self.viewer).matrix
         labels = list(matrix.labels) if matrix is not None else []
         for combo, default in ((self.label_a, 0), (self.label_b, 1)):
             current = combo.currentText()
@@ -134,9 +134,9 @@ class OverlapWidget(QWidget):
 
         result, planes = payload
         self.result = result
-        symbol, colour = VERDICT_LOOK[result.verdict]
-        self.verdict.setText(f"{symbol}  {result.verdict}: {VERDICTS[result.verdict]}")
-        self.verdict.setStyleSheet(f"background-color: {colour}; color: black; font-weight: bold; "
+        look = VERDICT_LOOK[result.verdict]
+        self.verdict.setText(f"{look.symbol}  {look.heading} ({result.verdict}): {VERDICTS[result.verdict]}")
+        self.verdict.setStyleSheet(f"background-color: {look.colour}; color: black; font-weight: bold; "
                                    "border: 1px solid #333;")
 
         def value(x, digits=3):
@@ -155,12 +155,12 @@ class OverlapWidget(QWidget):
         if result.inflation is not None:
             rows.append(["before r minus corrected after r", value(result.inflation), ""])
         rows.append(["pixels (saturated left out)", f"{result.pixels} ({result.saturated_pixels})", ""])
-        fill_table(self.table, ["", "before", "after"], rows)
-        figure = coloc_histograms((planes[0], planes[1]), (planes[2], planes[3]), result)
+        fill_table(self.table, ["", "before", "after"], rows, wrap_names=True)
+        figure = coloc_histograms((planes[0], planes[1]), (planes[2], planes[3]), result, stacked=True)
         if self.canvas is not None:
             self.canvas_holder.removeWidget(self.canvas)
             self.canvas.deleteLater()
         self.canvas = FigureCanvasQTAgg(figure)
-        self.canvas.setMinimumHeight(300)
+        self.canvas.setMinimumHeight(640)
         self.canvas_holder.addWidget(self.canvas)
 

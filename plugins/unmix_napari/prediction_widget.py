@@ -4,15 +4,14 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from qtpy.QtWidgets import (QComboBox, QFileDialog, QHBoxLayout, QLabel, QLineEdit, QPushButton, QTableWidget,
-                            QVBoxLayout, QWidget)
+from qtpy.QtWidgets import QComboBox, QFileDialog, QHBoxLayout, QLabel, QLineEdit, QPushButton, QTableWidget, QVBoxLayout
 
-from unmix.report.summary import matrix_rows
+from unmix.report.summary import comparison_rows, matrix_rows
 
-from .layers import Worker, fill_table, guarded, session
+from .layers import Panel, Worker, fill_table, guarded, session
 
 
-class PredictionWidget(QWidget):
+class PredictionWidget(Panel):
     """A description file: the channels' spectra and filter bands, and predicted versus measured."""
 
     def __init__(self, napari_viewer):
@@ -20,8 +19,7 @@ class PredictionWidget(QWidget):
         self.viewer = napari_viewer
         self.runner = Worker()
         self.prediction = None
-        self.setMinimumWidth(600)
-        layout = QVBoxLayout(self)
+        layout = QVBoxLayout(self.body)
         row = QHBoxLayout()
         self.path = QLineEdit()
         self.path.setPlaceholderText("description.toml")
@@ -81,9 +79,8 @@ class PredictionWidget(QWidget):
         description, prediction, comparison = payload
         self.prediction = prediction
         if comparison is not None:
-            rows = [[r["channel"], r["label"], f"{r['measured']:.4f}", f"{r['predicted']:.4f}",
-                     "-" if r["ratio"] is None else f"{r['ratio']:.2f}", r["verdict"]] for r in comparison.coefficients]
-            fill_table(self.table, ["channel", "label", "measured", "predicted", "ratio", "verdict"], rows)
+            header, *rows = comparison_rows(comparison)
+            fill_table(self.table, header, rows)
             self.summary.setText(comparison.summary)
         else:
             fill_table(self.table, ["channel \\ label", *prediction.matrix.labels], matrix_rows(prediction.matrix))

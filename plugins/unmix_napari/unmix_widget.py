@@ -3,22 +3,24 @@
 from __future__ import annotations
 
 import numpy as np
-from qtpy.QtWidgets import (QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit, QPushButton, QSpinBox,
-                            QWidget)
+from qtpy.QtWidgets import QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit, QPushButton, QSpinBox
 
-from .layers import (LABEL_COLORMAPS, LayerChoice, Worker, chosen_matrix, guarded, layer_image, refresh_matrix_sources,
-                     session)
+from unmix.report.style import label_colour
+
+from .io import CHANNEL_NAMES
+from .layers import (LayerChoice, Panel, Worker, chosen_matrix, default_image, guarded, layer_image,
+                     refresh_matrix_sources, session, set_matrix)
 
 
-class UnmixWidget(QWidget):
+class UnmixWidget(Panel):
     """Unmix a multichannel image layer: one layer per label and the saturation mask."""
 
     def __init__(self, napari_viewer):
         super().__init__()
         self.viewer = napari_viewer
         self.runner = Worker()
-        layout = QFormLayout(self)
-        self.image = LayerChoice(napari_viewer)
+        layout = QFormLayout(self.body)
+        self.image = LayerChoice(napari_viewer, prefer=lambda: default_image(self.viewer))
         self.channel_axis = QSpinBox()
         self.channel_axis.setRange(0, 5)
         self.matrix_source = QComboBox()
@@ -99,23 +101,32 @@ class UnmixWidget(QWidget):
                     if hasattr(plane, "compute") else plane
                 high = float(np.nanpercentile(sample, 99.5)) if np.isfinite(sample).any() else 1.0
                 name = self._add_or_update(plane, label, {
-                    "colormap": LABEL_COLORMAPS[k % len(LABEL_COLORMAPS)], "blending": "additive",
+                    "colormap": label_colour(k)[0], "blending": "additive",
                     "contrast_limits": (0.0, max(high, 1e-6)),
-                    "metadata": {"unmix_provenance": {"matrix_sha256": matrix.sha256(), "method": unmixer.method,
+                    # The layer is one channel, named by its label: saved, it is that label's channel.
+                    "metadata": {CHANNEL_NAMES: [label],
+                                 "unmix_provenance": {"matrix_sha256": matrix.sha256(), "method": unmixer.method,
                                                       "source_layer": layer.name}}})
                 names[label] = name
-            if saturated is not None:
-                name = f"saturated ({layer.name})"
+            name = f"saturated ({layer.name})"
+            if saturated is not None and saturated.any():
                 if name in self.viewer.layers:
                     self.viewer.layers[name].data = saturated
                 else:
                     self.viewer.add_labels(saturated, name=name, opacity=0.6)
+            elif name in self.viewer.layers:  # nothing saturated now: no empty layer left from before
+                self.viewer.layers.remove(name)
             shared = session(self.viewer)
             shared.unmixed, shared.raw_layer = names, layer.name
             if shared.matrix is None:
-                shared.matrix = matrix
-            count = "" if saturated is None else f"; {int(saturated.sum())} saturated pixels marked"
-            self.status.setText(f"unmixed {layer.name!r} into {', '.join(matrix.labels)}{count}")
+                set_matrix(self.viewer, matrix)
+            # Show the unmixed composite alone: the raw channels stay in the viewer, hidden.
+            for raw in getattr(layer, "layers", (layer,)):
+                raw.visible = False
+            count = "" if saturated is None else (f"; {int(saturated.sum())} saturated pixels marked" if saturated.any()
+                                                  else "; no pixel saturated")
+            self.status.setText(f"unmixed {layer.name!r} into {', '.join(matrix.labels)}{count} (the raw image is "
+                                "hidden: tick its eye to compare)")
 
         self.runner.start(work, done, "Unmixing")
 

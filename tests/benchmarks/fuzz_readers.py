@@ -77,7 +77,7 @@ def coloc_seed(folder: Path, matrix: Path) -> Path:
     from unmix.demo import demo_inputs
 
     path = folder / "c.json"
-    code = cli(["coloc", str(demo_inputs()["sample"]), "--matrix", str(matrix), "--labels", "Cobaltin,Emberin",
+    code = cli(["coloc", str(demo_inputs()["sample"]), "--matrix", str(matrix), "--labels", "Pondpetal,Emberin",
                 "--labels", "Fernlight,Emberin", "--rounds", "19", "--json", str(path), "--quiet"])
     assert code == 0
     return path

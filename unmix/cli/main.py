@@ -9,7 +9,9 @@ the subcommands, so ``unmix --help`` starts at once.
 from __future__ import annotations
 
 import argparse
+import difflib
 import logging
+import re
 import sys
 import traceback
 import warnings
@@ -18,6 +20,33 @@ from .._version import __version__
 from ..errors import InputError
 from . import apply, coloc, demo, measure, optics, report
 from .args import one_line
+
+
+DESCRIPTION = """\
+Measure how much each fluorescent label leaks into the other labels' channels
+(bleed-through) from single-label control images, remove it from your stacks,
+and check whether the overlap between two labels survives the correction.
+Start with the demo, then measure, apply, coloc and report on your own data."""
+
+EXAMPLES = """\
+examples:
+  unmix demo -o unmix-demo
+      run the whole job on invented demo data; open unmix-demo/demo_report.html
+  unmix measure --control LabelA=a1.ome.tif,a2.ome.tif,a3.ome.tif \\
+                --control LabelB=b1.ome.tif,b2.ome.tif,b3.ome.tif \\
+                --unstained unstained.ome.tif -o matrix.json
+      measure the bleed-through matrix from three control fields per label
+
+Each command has its own help: unmix COMMAND --help"""
+
+
+class _HelpFormatter(argparse.RawDescriptionHelpFormatter):
+    """Text kept as written; the commands listed without a "COMMAND" line above them."""
+
+    def _format_action(self, action):
+        if isinstance(action, argparse._SubParsersAction):
+            return "".join(self._format_action(choice) for choice in action._get_subactions())
+        return super()._format_action(action)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -37,17 +66,65 @@ class _WarningLines(logging.Handler):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="unmix", description=__doc__.split("\n")[0])
+    parser = _Parser(prog="unmix", description=DESCRIPTION, epilog=EXAMPLES,
+                     formatter_class=_HelpFormatter)
     parser.add_argument("--version", action="version", version=f"unmix {__version__}")
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
     common.add_argument("--quiet", action="store_true", help="print nothing but warnings and errors")
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser, title="commands")
     sub.required = True
 
     for module in (measure, apply, coloc, optics, report, demo):
         module.add_parsers(sub, common)
     return parser
+
+
+def _suggestion(name: str, known) -> str | None:
+    """The known name closest to a misspelt one (underscores read as hyphens), or None."""
+    known = list(known)
+    if name.replace("_", "-") in known:
+        return name.replace("_", "-")
+    close = difflib.get_close_matches(name, known, n=1, cutoff=0.6)
+    return close[0] if close else None
+
+
+def _check_names(parser: argparse.ArgumentParser, argv) -> None:
+    """Refuse a misspelt command or option by name, with the nearest correct one.
+
+    argparse alone reports a misspelt option only as "unrecognized arguments", or worse, as a
+    missing required option (``--matrx`` for ``--matrix``). Options are checked as argparse
+    reads them: exact names, unique prefixes, ``--name=value`` and ``-oVALUE``; values that look
+    like negative numbers are values.
+    """
+    commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
+    top = [o for a in parser._actions for o in a.option_strings]
+    position = next((i for i, token in enumerate(argv) if not token.startswith("-")), None)
+    for token in argv[:position]:
+        if token not in top:
+            raise InputError(f"unmix: unknown option {token} before the command; options go after it "
+                             "(unmix COMMAND --option); see 'unmix --help'")
+    if position is None:
+        return
+    command = argv[position]
+    if command not in commands:
+        near = _suggestion(command, commands)
+        raise InputError(f"unmix: unknown command {command!r}" + (f"; did you mean {near!r}?" if near else
+                                                                   "; see 'unmix --help'"))
+    options = [o for a in commands[command]._actions for o in a.option_strings]
+    for token in argv[position + 1:]:
+        if token == "--":
+            break
+        if not token.startswith("-") or token == "-" or re.fullmatch(r"-\d[\d.,eE+-]*", token):
+            continue
+        name = token.split("=", 1)[0]
+        if name in options or (name.startswith("--") and len([o for o in options if o.startswith(name)]) == 1):
+            continue
+        if not name.startswith("--") and token[:2] in options:  # a short option with its value: -oOUT
+            continue
+        near = _suggestion(name, options)
+        raise InputError(f"unmix {command}: unknown option {name}; "
+                         + (f"did you mean {near}?" if near else f"see 'unmix {command} --help'"))
 
 
 def main(argv=None) -> int:
@@ -63,7 +140,9 @@ def _run(argv, debug: bool) -> int:
     handler = _WarningLines(logging.WARNING)
     logging.getLogger().addHandler(handler)
     try:
-        args = build_parser().parse_args(argv)
+        parser = build_parser()
+        _check_names(parser, argv)
+        args = parser.parse_args(argv)
         return args.run(args)
     except InputError as exc:
         print(f"error: {one_line(exc)}", file=sys.stderr)

@@ -73,7 +73,7 @@ def run_measure(args) -> int:
     if csv_path is not None:
         matrix.save_csv(csv_path)
     if not args.quiet:
-        print(matrix_summary(matrix))
+        print(matrix_summary(matrix, flags=False))
         print(f"\nwrote {output}" + (f" and {csv_path}" if csv_path else ""))
     return 0
 

@@ -14,7 +14,7 @@ def add_parsers(sub, common) -> None:
                              description="Predict the bleed-through matrix from a description of labels and optics.")
     predict.add_argument("--config", required=True, metavar="DESCRIPTION.toml", help="the description file")
     predict.add_argument("-o", "--output", required=True, metavar="PREDICTED.json", help="the matrix file to write")
-    predict.add_argument("--acquisition", choices=["sequential", "simultaneous", "tracks"],
+    predict.add_argument("--acquisition", choices=["sequential", "simultaneous", "grouped"],
                          help="acquisition mode (default: the description's)")
     predict.add_argument("--plot", metavar="SPECTRA.png", help="also draw the spectra and filter bands")
     predict.set_defaults(run=run_predict)
@@ -31,7 +31,7 @@ def add_parsers(sub, common) -> None:
                           description="Rank candidate set-ups (description files, acquisition modes) by their "
                                       "largest predicted leak, then by their worst noise penalty.")
     plan.add_argument("configs", nargs="+", metavar="DESCRIPTION.toml")
-    plan.add_argument("--acquisition", choices=["both", "sequential", "simultaneous", "tracks"], default="both",
+    plan.add_argument("--acquisition", choices=["both", "sequential", "simultaneous", "grouped"], default="both",
                       help="modes to rank for each description (both)")
     plan.set_defaults(run=run_plan)
 
@@ -73,7 +73,7 @@ def run_compare(args) -> int:
     from ..matrix import load_matrix
     from ..optics.comparison import compare, write_comparison
     from ..report.plots import comparison_pngs
-    from ..report.summary import table
+    from ..report.summary import comparison_rows, table
 
     if not 0 <= args.tolerance < float("inf"):
         raise InputError(f"--tolerance {args.tolerance}: give a finite relative tolerance of 0 or more (0.25)")
@@ -89,11 +89,7 @@ def run_compare(args) -> int:
     # Every figure is drawn before any file is written: all or none.
     paths = write_comparison(comparison, outdir, extra=comparison_pngs(measured, predicted, comparison, description))
     if not args.quiet:
-        rows = [["channel", "label", "measured [95 % CI]", "predicted", "ratio", "verdict"]]
-        for r in comparison.coefficients:
-            rows.append([r["channel"], r["label"], f"{r['measured']:.4f} [{r['ci95'][0]:.4f}, {r['ci95'][1]:.4f}]",
-                         f"{r['predicted']:.4f}", "-" if r["ratio"] is None else f"{r['ratio']:.2f}", r["verdict"]])
-        print(table(rows))
+        print(table(comparison_rows(comparison)))
         print()
         print(comparison.summary)
         print(f"\nwrote {paths['json']}, {paths['csv']} and plots in {outdir}")

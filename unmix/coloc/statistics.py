@@ -298,9 +298,10 @@ class Randomisation:
             return self.p_value, self.p_value
         from scipy.stats import beta
 
-        n, b = self.shifts, self.reached
-        low = float(beta.ppf(0.025, b, n - b + 1)) if b > 0 else 0.0
-        high = float(beta.ppf(0.975, b + 1, n - b)) if b < n else 1.0
+        n, b = self.shifts, min(max(self.reached, 0.0), float(self.shifts))
+        # The smoothed count of a widened test may be fractional, and as near n or 0 as rounding allows.
+        low = float(beta.ppf(0.025, b, n - b + 1)) if b > 1e-9 else 0.0
+        high = float(beta.ppf(0.975, b + 1, n - b)) if n - b > 1e-9 else 1.0
         return low, high
 
 

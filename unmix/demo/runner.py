@@ -17,7 +17,11 @@ from .scenario import demo_inputs, load_scenario
 
 
 def run_demo(outdir, out=None) -> dict:
-    """Run the tool on the shipped demo scenario, writing results to `outdir`."""
+    """Run the tool on the shipped demo scenario, writing results to `outdir`.
+
+    Idempotent: run again into the same folder, it replaces its own earlier results (each file
+    written atomically) and leaves any other file there alone.
+    """
     out = out or sys.stdout
     from ..matrix import load_matrix
     from ..measure.controls import measure_files
@@ -31,7 +35,7 @@ def run_demo(outdir, out=None) -> dict:
     matrix_path = matrix.save(outdir / "demo_matrix.json")
     csv_path = matrix.save_csv(outdir / "demo_matrix.csv")
     print(f"Demo: {truth['scenario']['lab']}, {truth['scenario']['instrument']} (invented scenario)", file=out)
-    print(matrix_summary(matrix), file=out)
+    print(matrix_summary(matrix, flags=False), file=out)
     true = np.asarray(truth["matrix"])
     inside = (matrix.ci95_low <= true + 1e-12) & (true - 1e-12 <= matrix.ci95_high)
     print(f"\nTrue coefficients inside the measured 95 % interval: {int(inside.sum())} of {inside.size}",
@@ -40,7 +44,7 @@ def run_demo(outdir, out=None) -> dict:
     from ..engine.batch import ApplySettings, apply_matrix
     from ..io.images import read_image
 
-    # The folder is the demo's own: a rerun measures the matrix again and replaces its results.
+    # The folder is the demo's own: a rerun replaces its earlier results (each file atomically).
     (result,) = apply_matrix(matrix, [inputs["sample"]], outdir / "unmixed", settings=ApplySettings(overwrite=True))
     if result.status == "failed":
         raise RuntimeError(f"demo sample failed to unmix: {result.message}")
@@ -51,7 +55,7 @@ def run_demo(outdir, out=None) -> dict:
     for k, label in enumerate(matrix.labels):
         errors[label] = float(np.sqrt(np.mean((unmixed[k] - true_abundances[k]) ** 2)))
         print(f"  {label}: {errors[label]:.1f} (peak signal {true_abundances[k].max():.0f})", file=out)
-    comparison, compare_dir = _measured_versus_predicted(matrix, outdir, out)
+    comparison, compare_dir, description = _measured_versus_predicted(matrix, outdir, out)
     coloc_records = _colocalization(matrix, inputs["sample"], Path(result.output), truth["pairs"], outdir, out)
 
     from ..report.html import build_report, write_report
@@ -59,7 +63,8 @@ def run_demo(outdir, out=None) -> dict:
     predicted = load_matrix(outdir / "demo_predicted.json")
     report = write_report(outdir / "demo_report.html", build_report(
         matrix, matrix_path=matrix_path, predicted=predicted, predicted_path=outdir / "demo_predicted.json",
-        coloc_records=coloc_records, title="Demo: bleed-through and colocalization report (invented scenario)"))
+        coloc_records=coloc_records, samples=[inputs["sample"]], description=description,
+        description_path=description.path, title="Demo: bleed-through and colocalization report (invented scenario)"))
     print(f"\nMatrix:    {matrix_path}\nTable:     {csv_path}\nUnmixed:   {result.output}\n"
           f"Predicted: {outdir / 'demo_predicted.json'}\nCompared:  {compare_dir}\n"
           f"Coloc:     {outdir / 'coloc.json'}\nReport:    {report}", file=out)
@@ -94,7 +99,7 @@ def _colocalization(matrix, sample: Path, unmixed_path: Path, pairs: dict, outdi
         print(f"  {pair[0]} / {pair[1]} ({role.replace('_', ' ')}): Pearson r {result.before.pearson:.3f} before, "
               f"{result.after.pearson:.3f} after: {result.verdict}", file=out)
     write_text_atomic(outdir / "coloc.json", json.dumps({"results": records}, indent=2, allow_nan=False) + "\n")
-    return records
+    return [{**record, "source": str(outdir / "coloc.json")} for record in records]
 
 
 def _measured_versus_predicted(matrix, outdir: Path, out):
@@ -102,6 +107,7 @@ def _measured_versus_predicted(matrix, outdir: Path, out):
     from ..optics.comparison import compare, write_comparison
     from ..optics.prediction import predict
     from ..report.plots import comparison_pngs
+    from ..report.summary import comparison_rows, table
 
     scenario = load_scenario()
     description = scenario.described_optics()
@@ -111,9 +117,6 @@ def _measured_versus_predicted(matrix, outdir: Path, out):
     compare_dir = outdir / "compare"
     write_comparison(comparison, compare_dir, extra=comparison_pngs(matrix, predicted, comparison, description))
     print("\nMeasured versus predicted from the instrument's description:", file=out)
-    for row in comparison.coefficients:
-        print(f"  {row['label']} in {row['channel']}: measured {row['measured']:.4f} "
-              f"[{row['ci95'][0]:.4f}, {row['ci95'][1]:.4f}], predicted {row['predicted']:.4f}: {row['verdict']}",
-              file=out)
-    print(f"  {comparison.summary}", file=out)
-    return comparison, compare_dir
+    print(table(comparison_rows(comparison)), file=out)
+    print(comparison.summary, file=out)
+    return comparison, compare_dir, description

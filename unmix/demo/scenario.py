@@ -1,14 +1,15 @@
 """The demo scenario: an invented specimen on an invented instrument, simulated.
 
 The scenario (``configs/demo_scenario.toml``) describes three invented labels
-on an invented widefield instrument: nuclei (Cobaltin), a filament network
+on an invented widefield instrument: nuclei (Pondpetal), a filament network
 (Fernlight) and puncta inside the nuclei (Emberin). Fernlight and Emberin are
 placed independently, but Fernlight leaks strongly into Emberin's channel, so
-the raw channels look overlapped; Cobaltin and Emberin truly overlap.
+the raw channels look overlapped; Pondpetal and Emberin truly overlap.
 
-:func:`generate` simulates single-label controls (two fields per label), an
-unstained specimen, a dark frame and a three-label sample through a camera
-model (offset, gain, Poisson shot noise, Gaussian read noise, uneven
+:func:`generate` simulates single-label controls (three fields per label, so
+that the matrix intervals cover how fields differ), an unstained specimen, a
+dark frame, a three-label sample and a small three-label z-stack through a
+camera model (offset, gain, Poisson shot noise, Gaussian read noise, uneven
 illumination, 12-bit saturation), seeded and deterministic, and saves the
 ground truth beside them. Invented data: for demonstration and
 self-consistency checks only.
@@ -178,16 +179,55 @@ def _camera(rng, electrons: np.ndarray, camera: dict, shot_noise: bool = True) -
     return np.clip(np.round(adu), 0, camera["saturation_adu"]).astype(np.uint16)
 
 
+def _specimen_stack(rng, scenario: Scenario, shape, labels: list[str]) -> dict:
+    """Abundance volumes (Z, Y, X) for `labels`: the structures of :func:`_specimen` in 3-D.
+
+    Nuclei are ellipses extruded over a few planes around their own depth, filaments lie at
+    their own depth, puncta sit inside the nuclear volume; the optics blur in 3-D (wider in z).
+    """
+    from scipy.ndimage import gaussian_filter
+
+    setup = scenario.raw["scenario"]
+    n_z, plane = shape[0], tuple(shape[1:])
+    area = plane[0] * plane[1] / 65536
+    nuclei, nuclear = np.zeros(shape), np.zeros(shape, bool)
+    for _ in range(max(1, int(round(12 * area)))):  # denser than a plane: a small stack shows a few
+        image, mask = _nuclei(rng, plane, 1)
+        centre, half = rng.uniform(2, n_z - 3), rng.uniform(1.5, 2.5)
+        planes = np.abs(np.arange(n_z) - centre) <= half
+        nuclei[planes] = np.maximum(nuclei[planes], image)
+        nuclear[planes] |= mask
+    filaments = np.zeros(shape)
+    for _ in range(int(round(40 * area))):
+        filaments[int(rng.integers(0, n_z))] += _filaments(rng, plane, 1)
+    puncta = np.zeros(shape)
+    candidates = np.flatnonzero(nuclear)
+    for index in rng.choice(candidates, size=int(round(120 * area)), replace=True):
+        puncta.flat[index] += rng.uniform(0.6, 1.6)
+    sigma = (setup["psf_sigma_z_planes"], setup["psf_sigma_px"], setup["psf_sigma_px"])
+
+    def blurred(volume):
+        volume = gaussian_filter(volume, sigma)
+        return volume / volume.max() if volume.max() > 0 else volume
+
+    structures = {"nuclei": blurred(nuclei), "filaments": blurred(np.minimum(filaments, 1.5)),
+                  "nuclear_puncta": blurred(puncta) * 1.3}
+    return {lab["name"]: structures[lab["structure"]] * lab["brightness_electrons"]
+            for lab in scenario.raw["label"] if lab["name"] in labels}
+
+
 def simulate(scenario: Scenario, shape, labels: list[str], rng, *, autofluorescence=True,
              brightness_scale: float = 1.0):
     """Simulate one field: raw counts (C, Y, X) uint16 and true abundances (K, Y, X).
 
     Abundances are in ADU of background-subtracted signal in each label's
     primary channel, illumination included (what unmixing should return).
+    A 3-D `shape` (Z, Y, X) simulates a z-stack: raw (C, Z, Y, X), abundances (K, Z, Y, X).
     """
     camera = scenario.raw["camera"]
-    maps = _specimen(rng, scenario, shape, labels)
-    illumination = _illumination(rng, shape, camera["illumination_falloff"])
+    shape = tuple(shape)
+    maps = (_specimen_stack if len(shape) == 3 else _specimen)(rng, scenario, shape, labels)
+    illumination = _illumination(rng, shape[-2:], camera["illumination_falloff"])
     auto = _autofluorescence(rng, shape, scenario) if autofluorescence else {}
     matrix = scenario.true_matrix()
     raw = []
@@ -217,7 +257,8 @@ def generate(outdir, scenario: Scenario | None = None) -> list[Path]:
     written = []
 
     def save(name, data, names, what):
-        image = Image(data=data, axes="CYX", channel_names=tuple(names), pixel_size=size)
+        image = Image(data=data, axes="CYX" if data.ndim == 3 else "CZYX", channel_names=tuple(names),
+                      pixel_size=size if data.ndim == 3 else {**size, "Z": setup["z_step_um"]})
         written.append(write_ome_tiff(outdir / name, image, compression="zlib", provenance={
             "demo": setup["lab"], "instrument": setup["instrument"], "content": what,
             "note": "simulated, invented scenario"}))
@@ -233,6 +274,10 @@ def generate(outdir, scenario: Scenario | None = None) -> list[Path]:
     sample, truth = simulate(scenario, tuple(setup["sample_shape"]), scenario.labels, rng)
     save("sample.ome.tif", sample, channels, "three-label sample")
     save("sample_truth.ome.tif", truth, scenario.labels, "true abundances of the sample (ADU in primary channel)")
+    stack, stack_truth = simulate(scenario, tuple(setup["stack_shape"]), scenario.labels, rng)
+    save("sample_stack.ome.tif", stack, channels, "three-label z-stack sample")
+    save("sample_stack_truth.ome.tif", stack_truth, scenario.labels,
+         "true abundances of the z-stack sample (ADU in primary channel)")
     truth_file = outdir / "truth.json"
     truth_file.write_text(json.dumps({
         "scenario": setup, "camera": camera, "channels": scenario.channels, "labels": scenario.labels,
@@ -255,5 +300,6 @@ def demo_inputs(stacks: Path | None = None) -> dict:
         "unstained": stacks / "unstained.ome.tif",
         "dark": stacks / "dark.ome.tif",
         "sample": stacks / "sample.ome.tif",
+        "sample_stack": stacks / "sample_stack.ome.tif",
         "truth": stacks / "truth.json",
     }

@@ -354,18 +354,33 @@ def write_files_atomic(contents: dict) -> None:
 @contextlib.contextmanager
 def folder_lock(lock_file: Path):
     """An exclusive advisory lock (POSIX flock) on the hidden file `lock_file`; released when
-    the block ends, and by the kernel when the process ends, even when it is killed."""
+    the block ends, and by the kernel when the process ends, even when it is killed.
+
+    The holder removes the lock file before releasing it, so no empty file is left in the folder.
+    A run that was waiting then holds a lock on a removed file: it sees that the name no longer
+    leads to the file it locked, and locks afresh.
+    """
     try:
         import fcntl
     except ImportError:  # no flock on this platform: atomic replacement alone
         yield
         return
-    with open(lock_file, "a+b") as handle:
+    while True:
+        handle = open(lock_file, "a+b")
         fcntl.flock(handle, fcntl.LOCK_EX)
         try:
-            yield
-        finally:
-            fcntl.flock(handle, fcntl.LOCK_UN)
+            named = os.stat(lock_file)
+        except FileNotFoundError:
+            named = None
+        held = os.fstat(handle.fileno())
+        if named is not None and (named.st_dev, named.st_ino) == (held.st_dev, held.st_ino):
+            break
+        handle.close()
+    try:
+        yield
+    finally:
+        Path(lock_file).unlink(missing_ok=True)
+        handle.close()
 
 
 # --- outputs and inputs -------------------------------------------------------------

@@ -2,7 +2,9 @@
 
 The prediction is first renormalised to the measured file's primary channels
 (``P'[c,k] = P[c,k] / P[primary_measured(k), k]``), so both matrices answer
-the same question. Then, for every off-primary coefficient:
+the same question. A measured primary where the prediction gives the label
+less than ``PRIMARY_SHARE`` of its peak is refused rather than divided by
+(swapped controls give exactly that). Then, for every off-primary coefficient:
 
 - ``below-detection``: the measured value and the prediction are both below
   what the controls can resolve (the measured interval's width, and never
@@ -38,6 +40,9 @@ from ..matrix import BleedThroughMatrix
 MODEL_TOLERANCE = 0.25
 # Smallest coefficient that single-label controls resolve in practice (common practice).
 DETECTION_FLOOR = 0.002
+# A label's measured primary channel must get at least this share of the label's predicted peak
+# signal, else the two matrices do not describe the same label (a rule of this tool).
+PRIMARY_SHARE = 0.1
 
 CAUSES = {
     "higher": "more leakage than the optics predict: an emission filter wider, shifted or aged beyond its "
@@ -86,10 +91,17 @@ def aligned_prediction(measured: BleedThroughMatrix, predicted: BleedThroughMatr
     columns = [predicted.labels.index(label) for label in measured.labels]
     values = predicted.matrix[np.ix_(rows, columns)]
     for k, label in enumerate(measured.labels):
-        reference = values[measured.channels.index(measured.primary[label]), k]
-        if reference <= 0:
-            raise InputError(f"{where}: the prediction gives label {label!r} no signal in its measured primary "
-                             f"channel {measured.primary[label]!r}; check the description")
+        primary = measured.primary[label]
+        reference, peak = values[measured.channels.index(primary), k], values[:, k].max()
+        # Dividing by a near-zero prediction would turn every coefficient of the column into noise
+        # times a huge factor: refuse, and say what usually causes it.
+        if not reference > PRIMARY_SHARE * peak:
+            brightest = measured.channels[int(np.argmax(values[:, k]))]
+            share = f"{100 * max(reference, 0.0) / peak:.2g} %" if peak > 0 else "none"
+            raise InputError(f"{where}: label {label!r} was measured brightest in {primary!r}, but the prediction "
+                             f"gives it {share} of its peak signal there (it predicts {brightest!r}); the control "
+                             f"given for {label!r} may be another label's (swapped controls?), or the description's "
+                             "spectra are wrong: check the control's label, then the description")
         values[:, k] = values[:, k] / reference
     return values
 

@@ -24,8 +24,10 @@ exactly as the command-line contract writes it; the extensions are:
   ``[label_shapes.NAME]`` tables, here or in files listed in
   ``include = [...]`` under ``[description]``; a channel then says
   ``emission_filter = "NAME"``;
-- ``track = "NAME"`` per channel with ``acquisition = "tracks"``: channels of
-  one track are imaged together (simultaneous within, sequential between);
+- ``group = "NAME"`` per channel with ``acquisition = "grouped"``: channels of
+  one group are imaged together (simultaneous within, sequential between);
+  files written with the earlier names (``acquisition = "tracks"``, a
+  channel's ``track``) are read as these, with a warning;
 - ``grid = { start, stop, step }`` under ``[description]``: the wavelength
   grid in nm (default 300-1000 nm every 0.5 nm).
 
@@ -38,6 +40,7 @@ from __future__ import annotations
 
 import math
 import tomllib
+import warnings
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
@@ -46,18 +49,20 @@ from typing import Callable
 import numpy as np
 
 from . import spectra
-from ..errors import InputError, read_user_text
+from ..errors import InputError, InputWarning, read_user_text
 
 FORMAT = "unmix-description"
 VERSION = 1
-ACQUISITIONS = ("simultaneous", "sequential", "tracks")
+ACQUISITIONS = ("simultaneous", "sequential", "grouped")
+# Earlier names of the grouped mode and of a channel's group: still read, with a warning.
+OLD_GROUPED, OLD_GROUP_KEY = "tracks", "track"
 LIBRARIES = ("filters", "sources", "detectors", "label_shapes")
 
 _DESCRIPTION_KEYS = {"format", "version", "acquisition", "include", "grid", "name", "notes"}
 _LABEL_KEYS = {"name", "excitation", "emission", "extinction", "quantum_yield", "primary", "shape", "notes"}
 _SHAPE_KEYS = {"excitation", "emission", "extinction", "quantum_yield", "notes"}
 _CHANNEL_KEYS = {"name", "source", "excitation_filter", "dichroic", "emission_filter", "detector", "exposure",
-                 "gain", "track", "notes"}
+                 "gain", "group", OLD_GROUP_KEY, "notes"}
 _BAND_KEYS = {"peak_nm", "fwhm_nm", "skew", "shoulder", "csv", "unit"}
 _FILTER_KEYS = {"csv", "band", "bands", "longpass_nm", "shortpass_nm", "transition_nm", "steepness_nm", "od",
                 "peak", "unit"}
@@ -107,7 +112,7 @@ class ChannelOptics:
     detector: Curve | None
     exposure: float
     gain: float
-    track: str | None
+    group: str | None  # channels of one group are imaged together (acquisition "grouped")
 
 
 @dataclass(frozen=True)
@@ -141,6 +146,8 @@ def load_description(path) -> Description:
     if head.get("version") != VERSION:
         raise InputError(f"{path}: unsupported version {head.get('version')!r}; this tool reads version {VERSION}")
     acquisition = head.get("acquisition", "simultaneous")
+    if acquisition == OLD_GROUPED:
+        acquisition = "grouped"
     if acquisition not in ACQUISITIONS:
         raise InputError(f"{path}: acquisition {acquisition!r}; use one of {', '.join(ACQUISITIONS)}")
     grid = _grid(head.get("grid"), path)
@@ -160,8 +167,14 @@ def load_description(path) -> Description:
         if label.primary is not None and label.primary not in {c.name for c in channels}:
             raise InputError(f"{path}: label {label.name!r} names primary channel {label.primary!r}, which is not "
                              "a [[channel]]; fix the name")
-    if acquisition == "tracks" and not any(c.track for c in channels):
-        raise InputError(f"{path}: acquisition \"tracks\" but no channel has a track; give track = \"NAME\" per channel")
+    old = ([f'acquisition = "{OLD_GROUPED}" (now "grouped")'] if head.get("acquisition") == OLD_GROUPED else []) + (
+        [f"a channel's '{OLD_GROUP_KEY}' (now 'group')"] if any(OLD_GROUP_KEY in t for t in channel_tables) else [])
+    if old:
+        warnings.warn(f"{path}: read {' and '.join(old)}, earlier names of the same thing; rename them in the file",
+                      InputWarning, stacklevel=2)
+    if acquisition == "grouped" and not any(c.group for c in channels):
+        raise InputError(f"{path}: acquisition \"grouped\" but no channel has a group; give group = \"NAME\" per "
+                         "channel")
     return Description(labels, channels, acquisition, grid, str(path), str(head.get("name", "")))
 
 
@@ -438,9 +451,11 @@ class _Parser:
         where, name = self._named(table, index, "channel", _CHANNEL_KEYS)
         if "source" not in table:
             raise InputError(f"{where}: 'source' is missing; give e.g. {{ laser_nm = 488.0, power_mw = 3.0 }}")
-        track = table.get("track")
-        if track is not None and not isinstance(track, str):
-            raise InputError(f"{where}: track must be a name")
+        if "group" in table and OLD_GROUP_KEY in table:
+            raise InputError(f"{where}: both 'group' and '{OLD_GROUP_KEY}' (its earlier name); keep 'group'")
+        group = table.get("group", table.get(OLD_GROUP_KEY))
+        if group is not None and not isinstance(group, str):
+            raise InputError(f"{where}: group must be a name")
         if "emission_filter" not in table:
             raise InputError(f"{where}: 'emission_filter' is missing; give a csv or e.g. {{ band = \"525/50\" }}")
         return ChannelOptics(
@@ -451,7 +466,7 @@ class _Parser:
             detector=self.detector(table.get("detector"), f"{where} detector"),
             exposure=_number(table, "exposure", where, default=1.0, upper=1e6),
             gain=_number(table, "gain", where, default=1.0, upper=1e6),
-            track=track,
+            group=group,
         )
 
 

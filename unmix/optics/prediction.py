@@ -12,8 +12,8 @@ describes the inputs):
 - signal: sequential ``S = X D g``; simultaneous ``S[c,k] = (sum of X over
   the distinct sources) D[c,k] g_c``, a source listed by several channels
   counting once (with the filters of the first channel that lists it);
-  tracks (an extension) generalise both: channels of one track are imaged
-  together; ``g_c`` = exposure x gain;
+  grouped acquisition (an extension) generalises both: channels of one group
+  are imaged together, groups one after another; ``g_c`` = exposure x gain;
 - primary channel of k: the label's ``primary``, else the channel where S is
   largest; ``M[c,k] = S[c,k] / S[primary(k), k]``.
 
@@ -92,7 +92,7 @@ def _curve_on(curve, nm, default: float) -> np.ndarray:
     return np.full(nm.shape, default) if curve is None else curve(nm)
 
 
-def _tracks(description: Description, acquisition: str) -> list[list[int]]:
+def _groups(description: Description, acquisition: str) -> list[list[int]]:
     """Groups of channel indices imaged together."""
     n = len(description.channels)
     if acquisition == "sequential":
@@ -101,7 +101,7 @@ def _tracks(description: Description, acquisition: str) -> list[list[int]]:
         return [list(range(n))]
     groups: dict = {}
     for c, channel in enumerate(description.channels):
-        groups.setdefault(channel.track or f"\0{c}", []).append(c)
+        groups.setdefault(channel.group or f"\0{c}", []).append(c)
     return list(groups.values())
 
 
@@ -111,11 +111,12 @@ def predict(description: Description, acquisition: str | None = None) -> Predict
     Raises
     ------
     InputError
-        When a label is invisible in every channel, or the mode needs tracks the file lacks.
+        When a label is invisible in every channel, or the mode needs groups the file lacks.
     """
     acquisition = acquisition or description.acquisition
-    if acquisition == "tracks" and not any(c.track for c in description.channels):
-        raise InputError(f"{description.path}: --acquisition tracks, but no channel has a track")
+    if acquisition == "grouped" and not any(c.group for c in description.channels):
+        raise InputError(f"{description.path}: --acquisition grouped, but no channel has a group; give group = "
+                         "\"NAME\" per channel")
     nm = description.grid.nm
     grid = description.grid
     labels, channels = description.labels, description.channels
@@ -162,11 +163,11 @@ def predict(description: Description, acquisition: str | None = None) -> Predict
             photons = source.power_mw * power / total * nm * t_ex[c] * reflect[c]
             own[c] = grid.integrate(photons[None, :] * eps) * extinction
     excitation = np.zeros_like(own)
-    for track in _tracks(description, acquisition):
+    for group in _groups(description, acquisition):
         first_of: dict = {}
-        for c in track:
+        for c in group:
             first_of.setdefault(channels[c].source.identity, c)
-        excitation[track] = own[list(first_of.values())].sum(axis=0)
+        excitation[group] = own[list(first_of.values())].sum(axis=0)
 
     detection = quantum_yield[None, :] * grid.integrate(
         (t_em * np.where(has_dichroic[:, None], t_dc, 1.0) * qe)[:, None, :] * emission[None, :, :]) * gain[:, None]

@@ -2,7 +2,8 @@
 
 Every function returns a matplotlib Figure; :func:`save_png` writes one
 atomically. Verdicts are told apart by marker shape and text as well as by
-colour, so that no reading depends on telling red from green. Names from
+colour, so that no reading depends on telling red from green; colours come
+from :mod:`.style`, shared with the report and the napari plugin. Names from
 users' files (labels, channels) are drawn as plain text (:func:`plain`):
 matplotlib would read text between two ``$`` as mathematics and fail on it.
 """
@@ -13,13 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-# Verdict -> (colour, marker): colour-blind-safe hues (Okabe-Ito palette), distinct shapes.
-VERDICT_STYLE = {
-    "agrees": ("#009E73", "o"),
-    "higher": ("#D55E00", "^"),
-    "lower": ("#0072B2", "v"),
-    "below-detection": ("#999999", "s"),
-}
+from .summary import fixed
+from .style import COMPARISON_LOOK, hex_colour, label_colour, wavelength_colour
 
 
 def _pyplot():
@@ -74,37 +70,123 @@ def comparison_pngs(measured, predicted, comparison, description=None) -> dict:
     return pngs
 
 
+def _band_centre(curve, nm) -> float | None:
+    """Transmission-weighted mean wavelength of a filter curve (its pass band), or None."""
+    values = np.clip(curve(nm), 0, None)
+    values = np.where(values >= 0.5 * values.max(), values, 0.0) if values.max() > 0 else values
+    return float(np.sum(nm * values) / np.sum(values)) if values.sum() > 0 else None
+
+
 def spectra_figure(description):
-    """One panel per channel: the labels' emission spectra, the channel's emission band shaded,
-    its dichroic dashed and its excitation marked."""
+    """One panel per channel: the labels' emission spectra (peak 1), the channel's detection band
+    shaded, its dichroic dashed and its excitation dotted.
+
+    Each label is drawn in the colour of its emission peak wavelength; each channel's name and
+    band in the colour of the band's centre wavelength. Names stand outside the data (the channel
+    as the panel's axis label, the labels in a legend below the panels) in a constrained layout,
+    so none is cut off or drawn over another at any figure width (the plugin's narrow dock too).
+    """
     plt = _pyplot()
+    from matplotlib.patches import Patch
+
     nm = description.grid.nm
     n = len(description.channels)
-    figure, axes = plt.subplots(n, 1, figsize=(7.5, 1.9 * n + 0.6), sharex=True, squeeze=False)
-    colours = plt.get_cmap("tab10")
-    emission = {}
+    figure, axes = plt.subplots(n, 1, figsize=(7.0, 1.5 * n + 1.4), sharex=True, squeeze=False,
+                                layout="constrained")
+    emission, peaks = {}, {}
     for label in description.labels:
         values = label.emission(nm)
         emission[label.name] = values / values.max() if values.max() > 0 else values
-    for axis, channel in zip(axes[:, 0], description.channels):
+        peaks[label.name] = float(nm[np.argmax(values)])
+    # Show the part of the grid where something happens: the labels' emission, the bands, the lines.
+    seen = np.zeros(nm.shape, bool)
+    for values in emission.values():
+        seen |= values > 0.01
+    for channel in description.channels:
         if channel.emission_filter is not None:
-            axis.fill_between(nm, 0, channel.emission_filter(nm), color="0.85", label="emission filter")
+            seen |= channel.emission_filter(nm) > 0.05
+    lines = [c.source.line_nm for c in description.channels if c.source.line_nm is not None]
+    low = min([float(nm[seen].min())] + lines) if seen.any() else float(nm[0])
+    high = max([float(nm[seen].max())] + lines) if seen.any() else float(nm[-1])
+    handles = {}
+    for axis, channel in zip(axes[:, 0], description.channels):
+        centre = _band_centre(channel.emission_filter, nm) if channel.emission_filter is not None else None
+        band_colour = wavelength_colour(centre) if centre is not None else (0.6, 0.6, 0.6)
+        if channel.emission_filter is not None:
+            axis.fill_between(nm, 0, channel.emission_filter(nm), color=band_colour, alpha=0.3, lw=0)
+            # The legend's entry stands for every channel's band, each in its own colour: neutral there.
+            handles["detection band (emission filter)"] = Patch(color="0.75")
         if channel.dichroic is not None:
-            axis.plot(nm, channel.dichroic(nm), "k--", lw=0.8, label="dichroic (transmission)")
-        for i, (name, values) in enumerate(emission.items()):
-            axis.plot(nm, values, color=colours(i), lw=1.4, label=plain(name))
+            handles["dichroic (transmission)"], = axis.plot(nm, channel.dichroic(nm), color="0.45", ls="--", lw=0.8)
+        for name, values in emission.items():
+            handles[plain(name)], = axis.plot(nm, values, color=wavelength_colour(peaks[name], on_white=True), lw=1.6)
         source = channel.source
         if source.line_nm is not None:
-            axis.axvline(source.line_nm, color="k", lw=1.5, ls=":", label=f"excitation {source.line_nm:g} nm")
+            handles["excitation"] = axis.axvline(source.line_nm, color="k", lw=1.4, ls=":")
         else:
             power = source.spectrum(nm)
-            axis.plot(nm, power / power.max(), color="k", lw=1.0, ls=":", label="excitation source")
+            handles["excitation"], = axis.plot(nm, power / power.max(), color="k", lw=1.0, ls=":")
+        axis.set_ylabel(plain(channel.name), fontsize=9, fontweight="bold",
+                        color=wavelength_colour(centre, on_white=True) if centre else "k")
         axis.set_ylim(0, 1.05)
-        axis.set_ylabel(plain(channel.name), rotation=0, ha="right", va="center")
         axis.set_yticks([0, 0.5, 1])
-    axes[0, 0].legend(fontsize=7, ncol=4, loc="lower center", bbox_to_anchor=(0.5, 1.02))
+    axes[-1, 0].set_xlim(max(low - 15, nm[0]), min(high + 15, nm[-1]))
     axes[-1, 0].set_xlabel("wavelength (nm)")
-    figure.suptitle("Emission spectra (peak 1) and each channel's filters", fontsize=10, y=1.0 + 0.25 / n)
+    figure.legend(list(handles.values()), list(handles), loc="outside lower center", ncol=2, fontsize=8,
+                  frameon=False)
+    figure.suptitle("Emission spectra (peak 1) and each channel's bands", fontsize=10)
+    return figure
+
+
+def _block_mean(plane: np.ndarray, largest: int) -> np.ndarray:
+    """`plane` shrunk by an integer factor (mean over blocks) to at most `largest` pixels a side."""
+    factor = int(np.ceil(max(plane.shape) / largest))
+    if factor <= 1:
+        return plane
+    ny, nx = (s // factor * factor for s in plane.shape)
+    return plane[:ny, :nx].reshape(ny // factor, factor, nx // factor, factor).mean(axis=(1, 3))
+
+
+def sample_figure(signal: np.ndarray, abundances: np.ndarray, matrix, title: str = ""):
+    """Raw against unmixed, as thumbnails: a composite of each, then each label on its own.
+
+    `signal` (C, Y, X) is the raw plane in the matrix's channel order, background subtracted;
+    `abundances` (K, Y, X) its unmixed labels, in the same units (intensity in each label's
+    primary channel). Top row: each label's primary channel as raw; bottom row: the label itself.
+    Each label keeps one colour and one display range in both rows, so what unmixing removed from
+    a channel shows as what darkens.
+    """
+    plt = _pyplot()
+    labels = list(matrix.labels)
+    primaries = [matrix.channels.index(matrix.primary[label]) for label in labels]
+    raw = [_block_mean(np.nan_to_num(signal[c].astype(np.float64)), 384) for c in primaries]
+    unmixed = [_block_mean(np.nan_to_num(abundances[k].astype(np.float64)), 384) for k in range(len(labels))]
+    tops = [max(float(np.percentile(r, 99.5)), 1e-12) for r in raw]
+    columns = 1 + len(labels)
+    side = min(2.3, 11.0 / columns)
+    figure, axes = plt.subplots(2, columns, figsize=(side * columns, side * 2 + 0.7), squeeze=False,
+                                layout="constrained")
+
+    def composite(planes):
+        rgb = np.zeros(planes[0].shape + (3,))
+        for k, (plane, top) in enumerate(zip(planes, tops)):
+            rgb += np.clip(plane / top, 0, 1)[..., None] * np.asarray(label_colour(k)[1])
+        return np.clip(rgb, 0, 1)
+
+    for row, (planes, what) in enumerate(((raw, "raw"), (unmixed, "unmixed"))):
+        axes[row, 0].imshow(composite(planes), interpolation="nearest")
+        axes[row, 0].set_title(f"{what}: composite", fontsize=8)
+        for k, label in enumerate(labels):
+            axis = axes[row, k + 1]
+            axis.imshow(planes[k], cmap="gray", vmin=0, vmax=tops[k], interpolation="nearest")
+            name = f"{label}'s channel {matrix.primary[label]}" if row == 0 else label
+            axis.set_title(f"{what}: {name}", fontsize=8, color=hex_colour(
+                tuple(0.75 * v for v in label_colour(k)[1])))
+    for axis in axes.ravel():
+        axis.set_xticks([])
+        axis.set_yticks([])
+    if title:
+        figure.suptitle(title, fontsize=9)
     return figure
 
 
@@ -116,7 +198,7 @@ def matrices_figure(measured, predicted_values: np.ndarray):
     for axis, values, title in ((axes[0], measured.matrix, "measured"), (axes[1], predicted_values, "predicted")):
         image = axis.imshow(values, cmap="viridis", vmin=0, vmax=top)
         for (c, k), value in np.ndenumerate(values):
-            axis.text(k, c, f"{value:.3f}", ha="center", va="center", fontsize=8,
+            axis.text(k, c, fixed(value, 3), ha="center", va="center", fontsize=8,
                       color="white" if value < 0.6 * top else "black")
         axis.set_xticks(range(len(measured.labels)), [plain(n) for n in measured.labels], rotation=30, ha="right")
         axis.set_yticks(range(len(measured.channels)), [plain(n) for n in measured.channels])
@@ -137,7 +219,7 @@ def comparison_figure(comparison):
     axis.fill_between(line, line / (1 + comparison.tolerance), line * (1 + comparison.tolerance), color="0.9",
                       label=f"model tolerance ±{comparison.tolerance:.0%}")
     axis.plot(line, line, color="0.5", lw=0.8)
-    for verdict, (colour, marker) in VERDICT_STYLE.items():
+    for verdict, (colour, marker) in COMPARISON_LOOK.items():
         rows = [r for r in comparison.coefficients if r["verdict"] == verdict]
         if not rows:
             continue
@@ -163,15 +245,17 @@ def comparison_figure(comparison):
     return figure
 
 
-def coloc_histograms(before_pixels, after_pixels, result):
+def coloc_histograms(before_pixels, after_pixels, result, stacked: bool = False):
     """2-D intensity histograms of the pair before and after unmixing (log colour scale), with the
-    thresholds and the orthogonal regression line drawn; the verdict in the title."""
+    thresholds and the orthogonal regression line drawn; the verdict in the title. Side by side,
+    or one above the other with `stacked` (for a narrow panel)."""
     from matplotlib.colors import LogNorm
 
     from ..coloc.statistics import orthogonal_regression
 
     plt = _pyplot()
-    figure, axes = plt.subplots(1, 2, figsize=(10.5, 4.8), layout="constrained")
+    figure, axes = plt.subplots(*((2, 1) if stacked else (1, 2)), figsize=(5.4, 9.0) if stacked else (10.5, 4.8),
+                                layout="constrained")
     a_label, b_label = (plain(name) for name in result.pair)
     for axis, (a, b), coefficients, title in (
             (axes[0], before_pixels, result.before, "before: primary channels, background subtracted"),

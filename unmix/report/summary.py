@@ -14,6 +14,12 @@ def table(rows: list[list[str]]) -> str:
     return "\n".join(lines)
 
 
+def fixed(value: float, digits: int = 4) -> str:
+    """`value` with `digits` decimals; a value that rounds to zero prints as 0 (never -0.0000)."""
+    text = f"{value:.{digits}f}"
+    return "0" if float(text) == 0 else text
+
+
 def matrix_rows(matrix: BleedThroughMatrix) -> list[list[str]]:
     """One row per channel: its name, then each label's coefficient with its 95 % interval."""
     rows = []
@@ -24,15 +30,28 @@ def matrix_rows(matrix: BleedThroughMatrix) -> list[list[str]]:
             if matrix.primary[label] == channel:
                 cells.append("1 (primary)")
             elif matrix.ci95_low is not None:
-                cells.append(f"{value:.4f} [{matrix.ci95_low[c, k]:.4f}, {matrix.ci95_high[c, k]:.4f}]")
+                cells.append(f"{fixed(value)} [{fixed(matrix.ci95_low[c, k])}, {fixed(matrix.ci95_high[c, k])}]")
             else:
-                cells.append(f"{value:.4f}")
+                cells.append(fixed(value))
         rows.append(cells)
     return rows
 
 
-def matrix_summary(matrix: BleedThroughMatrix) -> str:
-    """The matrix with its 95 % intervals, per-label counts and any QC flags."""
+def comparison_rows(comparison) -> list[list[str]]:
+    """Measured versus predicted: a header row, then one row per off-primary coefficient."""
+    rows = [["channel", "label", "measured [95 %]", "predicted", "ratio", "verdict"]]
+    for r in comparison.coefficients:
+        rows.append([r["channel"], r["label"], f"{fixed(r['measured'])} [{fixed(r['ci95'][0])}, {fixed(r['ci95'][1])}]",
+                     fixed(r["predicted"]), "-" if r["ratio"] is None else f"{r['ratio']:.2f}", r["verdict"]])
+    return rows
+
+
+def matrix_summary(matrix: BleedThroughMatrix, flags: bool = True) -> str:
+    """The matrix with its 95 % intervals, per-label counts and (with `flags`) its QC flags.
+
+    Measuring emits each flag as a warning already: right after a measurement, pass
+    ``flags=False`` so that each is said once.
+    """
     rows = [["channel \\ label", *matrix.labels], *matrix_rows(matrix)]
     parts = [f"Bleed-through matrix ({matrix.kind}; signal in channel / signal in primary channel"
              + (", 95 % interval)" if matrix.ci95_low is not None else ")"), table(rows)]
@@ -51,6 +70,6 @@ def matrix_summary(matrix: BleedThroughMatrix) -> str:
         parts += ["", f"Background ({matrix.background_source}): {levels}"]
     parts += ["", f"Condition number {matrix.condition_number():.2f}; noise penalty "
               + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, matrix.noise_penalty()))]
-    for flag in matrix.qc.get("flags", []):
-        parts.append(f"QC: {flag}")
+    if flags:
+        parts += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])]
     return "\n".join(parts)
