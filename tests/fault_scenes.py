@@ -1,0 +1,69 @@
+"""Simulated single-label controls with the detector faults that bias a measured matrix, and known truth.
+
+A control is a field of blurred spots of varied brightness on a dark background, seen in a primary
+channel and in leak channels (coefficient = leak x primary signal), imaged by a camera model: Poisson
+shot noise, Gaussian read noise, gain and offset (common practice for scientific cameras). Each fault
+is applied where it happens in a real instrument:
+
+- compression: the detector's response x / (1 + x / knee) above the offset (a gain that falls as the
+  signal rises);
+- clipped offset: the offset set so low that the background's noise is cut at 0;
+- correlated noise: the noise of every channel smoothed between neighbouring pixels (what
+  deconvolution, denoising, lossy compression or line filtering leave behind);
+- a lateral (dy, dx) or axial shift of one channel against the others (chromatic misregistration).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+
+GAIN = 2.0          # ADU per electron
+OFFSET = 100.0      # ADU
+READ_NOISE = 3.0    # electrons
+BACKGROUND_E = 4.0  # electrons of diffuse background per pixel and channel
+
+
+def spots(rng, shape, psf_sigma: float = 1.5, density: float = 1 / 120) -> np.ndarray:
+    """Blurred spots of brightness 0.1-1 (peak about 1) on 0: signals that span the whole range (2-D or 3-D)."""
+    image = np.zeros(shape)
+    count = max(1, int(np.prod(shape) * density))
+    index = tuple(rng.integers(0, n, count) for n in shape)
+    np.add.at(image, index, rng.uniform(0.1, 1.0, count))
+    # A z-stack's blur is about twice as long axially as laterally, in planes of the same size (common practice).
+    sigma = (2 * max(psf_sigma, 1.0),) * (len(shape) - 2) + (max(psf_sigma, 1.0),) * 2
+    image = ndimage.gaussian_filter(image, sigma, mode="wrap")
+    return image / np.percentile(image, 99.9)
+
+
+def fault_control(seed: int, *, leaks=(0.3,), peak: float = 800.0, shape=(256, 256), knee: float | None = None,
+                  offset: float = OFFSET, correlated_sigma: float | None = None, shift=None, shifted_channel: int = 1,
+                  psf_sigma: float = 1.5, density: float = 1 / 120, dtype=np.uint16) -> np.ndarray:
+    """One control field (C, *shape) in ADU: channel 0 primary (peak `peak` ADU above background),
+    channels 1.. leak channels with the coefficients `leaks`.
+
+    `knee`: detector compression x / (1 + x / knee) of the signal above the offset, in ADU.
+    `offset`: the camera offset in ADU (below about 3 noise SDs, the background is clipped at 0).
+    `correlated_sigma`: the noise is smoothed by a Gaussian of this sigma in pixels (variance kept).
+    `shift`: sub-pixel shift of channel `shifted_channel`, one value per spatial axis (Fourier shift).
+    `density`: spots per pixel (per voxel in a z-stack).
+    """
+    rng = np.random.default_rng(seed)
+    signal = spots(rng, shape, psf_sigma, density) * peak / GAIN
+    coefficients = np.concatenate([[1.0], np.asarray(leaks, dtype=float)])
+    electrons = coefficients.reshape((-1,) + (1,) * len(shape)) * signal + BACKGROUND_E
+    noise = rng.poisson(electrons) - electrons + rng.normal(0, READ_NOISE, electrons.shape)
+    if correlated_sigma:
+        for c in range(noise.shape[0]):
+            smooth = ndimage.gaussian_filter(noise[c], correlated_sigma)
+            noise[c] = smooth * noise[c].std() / smooth.std()
+    adu = GAIN * (electrons + noise)
+    if shift is not None:
+        adu[shifted_channel] = np.real(np.fft.ifftn(ndimage.fourier_shift(np.fft.fftn(adu[shifted_channel]),
+                                                                          shift)))
+    if knee is not None:
+        adu = adu / (1 + np.maximum(adu, 0) / knee)
+    raw = np.round(adu + offset)
+    if np.issubdtype(dtype, np.integer):
+        raw = np.clip(raw, 0, np.iinfo(dtype).max)
+    return raw.astype(dtype)
