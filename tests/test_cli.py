@@ -44,6 +44,7 @@ def files(tmp_path, demo):
     tifffile.imwrite(tmp_path / "four_d.tif", np.stack([cob, cob]), photometric="minisblack")  # shape only, no axes
     _descriptions(tmp_path)
     _coloc_files(tmp_path, cob.shape[1:])
+    _settings_files(tmp_path, cob)
     _odd_files(tmp_path)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
@@ -90,6 +91,18 @@ def _odd_files(folder: Path) -> None:
     for name, change in variants.items():
         (folder / f"{name}.json").write_text(json.dumps({**good, **change}))
     (folder / "nan_matrix.json").write_text(json.dumps(good).replace('"matrix": [[1.0', '"matrix": [[NaN', 1))
+
+
+def _settings_files(folder: Path, cob) -> None:
+    """A sample imaged with twice the controls' exposure in one channel, and a matrix recording the
+    controls' settings (as measure stores them)."""
+    names = ["blue450", "green525", "orange600"]
+    tifffile.imwrite(folder / "slow.ome.tif", cob, ome=True, metadata={
+        "axes": "CYX", "Channel": {"Name": names}, "Plane": {"ExposureTime": [0.1, 0.4, 0.1]}})
+    matrix = json.loads((folder / "coloc_matrix.json").read_text())
+    matrix["provenance"] = {"acquisition": {"source": "control.ome.tif", "image": {}, "missing": [], "channels": {
+        name: {"exposure_s": 0.1} for name in names}}}
+    (folder / "settings_matrix.json").write_text(json.dumps(matrix))
 
 
 def _apply(files, matrix, image="cob"):
@@ -228,6 +241,13 @@ BAD_INPUT = {
     "matrix interval excludes its value": (lambda f: _apply(f, "ci_matrix"), "interval"),
     "matrix non-finite value": (lambda f: _apply(f, "nan_matrix"), "nan_matrix.json"),
     "apply complex pixels": (lambda f: _apply(f, "coloc_matrix", image="complex"), "complex64"),
+    "apply settings differ, strict": (lambda f: _apply(f, "settings_matrix", image="slow") + ["--strict-settings"],
+                                      "exposure_s is 0.4 in slow.ome.tif"),
+    "apply strict without settings": (lambda f: _apply(f, "coloc_matrix") + ["--strict-settings"],
+                                      "records no acquisition settings"),
+    "coloc settings differ, strict": (lambda f: ["coloc", f["slow"], "--matrix", Path(f["out"]).parent /
+                                                 "settings_matrix.json", "--labels", "Cobaltin,Emberin",
+                                                 "--strict-settings"], "slow.ome.tif"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],
@@ -334,3 +354,14 @@ def test_predict_compare_and_plan_from_the_command_line(tmp_path, capsys):
     capsys.readouterr()
     assert main(["plan", str(description)]) == 0
     assert "sequential" in capsys.readouterr().out
+
+
+def test_settings_difference_is_one_warning_line_per_setting(files, capsys, tmp_path):
+    folder = Path(files["out"]).parent
+    argv = ["apply", "--matrix", folder / "settings_matrix.json", files["slow"], "-o", tmp_path / "unmixed",
+            "--quiet"]
+    assert main([str(a) for a in argv]) == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    settings = [line for line in err if "acquisition settings differ" in line]
+    assert len(settings) == 1 and settings[0].startswith("warning: ")
+    assert "channel green525 exposure_s is 0.4 in slow.ome.tif but 0.1 in" in settings[0]

@@ -421,3 +421,23 @@ def test_axial_shift_in_z_stack_controls_is_refused():
     image = Image(stack, "CZYX", ("ch0", "ch1"), source="stack.tif")
     with pytest.raises(InputError, match=r"stack.tif.*shifted 1.0\d planes axially"):
         measure_matrix({"A": [image]}, settings=FAST)
+
+
+def test_controls_settings_are_stored_and_differences_between_controls_warned(tmp_path):
+    # Settings written by tifffile's OME writer (the reference writer): the matrix file keeps the first
+    # control's, and a control imaged with another exposure is warned of, naming the setting and both values.
+    import tifffile
+
+    from fault_scenes import fault_control
+
+    paths = []
+    for seed, exposure in ((1, 0.1), (2, 0.1), (3, 0.3)):
+        path = tmp_path / f"c{seed}.ome.tif"
+        tifffile.imwrite(path, fault_control(seed), ome=True, metadata={
+            "axes": "CYX", "Channel": {"Name": ["ch0", "ch1"]}, "Plane": {"ExposureTime": [exposure, exposure]}})
+        paths.append(str(path))
+    with pytest.warns(InputWarning, match=r"c3.ome.tif: acquisition settings differ between controls \(B\): "
+                                          r"channel ch0 exposure_s is 0.3 in c3.ome.tif but 0.1 in c1.ome.tif"):
+        matrix = measure_files({"A": paths[:2], "B": paths[2:]}, primary={"B": "ch1"}, settings=FAST)
+    acquisition = matrix.provenance["acquisition"]
+    assert acquisition["channels"]["ch1"]["exposure_s"] == 0.1 and acquisition["source"] == "c1.ome.tif"

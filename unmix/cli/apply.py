@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from .args import add_image_options, name_list, numbers, one_line
+from .args import add_image_options, add_settings_option, name_list, numbers, one_line
 
 
 def add_parsers(sub, common) -> None:
@@ -25,6 +25,7 @@ def add_parsers(sub, common) -> None:
     apply.add_argument("--overwrite", action="store_true", help="replace outputs made from another matrix or input")
     apply.add_argument("--residual", action="store_true", help="also write the per-pixel misfit (RMS residual)")
     apply.add_argument("--saturation", metavar="V[,V...]", help="saturation level, one or one per channel")
+    add_settings_option(apply)
     add_image_options(apply)
     apply.set_defaults(run=run_apply)
 
@@ -53,6 +54,10 @@ def run_apply(args) -> int:
         raise InputError(f"-o {args.output}: is a file; give a folder")
     if args.method not in ("nnls", "ls"):
         raise InputError(f"--method {args.method}: use nnls or ls")
+    from ..io.acquisition import check_settings
+
+    check_settings(matrix.provenance.get("acquisition"), inputs, strict=args.strict_settings, reference_name=args.matrix,
+                   channels=matrix.channels, channel_names=name_list(args.channel_names))
     settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
                              residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
                              axes=args.axes, channel_names=name_list(args.channel_names))

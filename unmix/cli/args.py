@@ -77,3 +77,9 @@ def add_image_options(parser):
     parser.add_argument("--axes", help="axis letters of the stored arrays, e.g. ZCYX (overrides metadata)")
     parser.add_argument("--channel-names", help="comma-separated channel names (overrides metadata)")
 
+
+
+def add_settings_option(parser):
+    parser.add_argument("--strict-settings", action="store_true",
+                        help="refuse inputs whose acquisition settings (OME metadata) differ from the controls' "
+                             "(default: one warning per difference)")

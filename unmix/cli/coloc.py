@@ -8,7 +8,7 @@ import numpy as np
 
 from ..coloc.verdict import ROUNDS
 from ..errors import InputError
-from .args import add_image_options, check_output, name_list
+from .args import add_image_options, add_settings_option, check_output, name_list
 
 
 def add_parsers(sub, common) -> None:
@@ -45,6 +45,7 @@ def add_parsers(sub, common) -> None:
     coloc.add_argument("--json", metavar="OUT.json", help="write the results as JSON")
     coloc.add_argument("--csv", metavar="OUT.csv", help="write one row per image x pair (x object)")
     coloc.add_argument("--histograms", metavar="DIR", help="write 2-D histograms before/after as PNG")
+    add_settings_option(coloc)
     add_image_options(coloc)
     coloc.set_defaults(run=run_coloc)
 
@@ -157,6 +158,10 @@ def run_coloc(args) -> int:
         if value:
             outputs[option] = check_output(value, inputs, option)
     warn_about_matrix(matrix)
+    from ..io.acquisition import check_settings
+
+    check_settings(matrix.provenance.get("acquisition"), args.inputs, strict=args.strict_settings,
+                   reference_name=args.matrix, channels=matrix.channels, channel_names=name_list(args.channel_names))
     flats = _flats(args, matrix, args.inputs)
     results = []
     for path in args.inputs:

@@ -1034,11 +1034,14 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
 
 def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None, saturation=None,
                   primary=None, allow_nonfinite=False, settings=None, axes=None,
-                  channel_names=None) -> BleedThroughMatrix:
+                  channel_names=None, registration=None) -> BleedThroughMatrix:
     """:func:`measure_matrix` on files, with axis and channel-name overrides and full provenance.
 
     Every path is read only when it is processed, so memory holds one
-    control field at a time.
+    control field at a time. The controls' acquisition settings (from their
+    OME metadata, :mod:`unmix.io.acquisition`) are stored in the provenance
+    (``acquisition``), so that ``apply`` and ``coloc`` can compare samples
+    with them; controls that differ from each other are warned of.
     """
     from ..io import provenance as prov
 
@@ -1064,8 +1067,13 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
         matrix = measure_matrix(
             controls, unstained=unstained, dark=dark, saturation=saturation, primary=primary,
             allow_nonfinite=allow_nonfinite, settings=settings, axes=axes, channel_names=channel_names,
+            registration=registration,
         )
         entries = [future.result() for future in described]
+    from ..io.acquisition import combine_settings
+
+    acquisition = combine_settings([path for _, path in all_paths], [role for role, _ in all_paths],
+                                   channel_names=channel_names)
     provenance = {
         "created": prov.utc_now(),
         "command": "measure",
@@ -1076,6 +1084,7 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
             "allow_nonfinite": allow_nonfinite, "axes": axes,
             "channel_names": None if channel_names is None else list(channel_names),
         },
+        "acquisition": acquisition,
     }
     return BleedThroughMatrix.from_dict({**matrix.to_dict(), "provenance": provenance})
 
