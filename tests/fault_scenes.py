@@ -67,3 +67,23 @@ def fault_control(seed: int, *, leaks=(0.3,), peak: float = 800.0, shape=(256, 2
     if np.issubdtype(dtype, np.integer):
         raw = np.clip(raw, 0, np.iinfo(dtype).max)
     return raw.astype(dtype)
+
+
+def bead_field(seed: int, shifts, *, shape=(256, 256), beads: int = 40, peak: float = 2000.0, psf_sigma: float = 1.2,
+               dtype=np.uint16) -> np.ndarray:
+    """Multicolour sub-resolution beads seen in every channel (C, *shape), channel c displaced by
+    `shifts[c]` (one value per spatial axis; Fourier shift), with the camera model above."""
+    rng = np.random.default_rng(seed)
+    image = np.zeros(shape)
+    index = tuple(rng.integers(8, n - 8, beads) for n in shape)
+    image[index] = rng.uniform(0.5, 1.0, beads)
+    sigma = (2 * psf_sigma,) * (len(shape) - 2) + (psf_sigma,) * 2
+    image = ndimage.gaussian_filter(image, sigma)
+    image = image / image.max() * peak / GAIN
+    channels = []
+    for shift in shifts:
+        moved = np.real(np.fft.ifftn(ndimage.fourier_shift(np.fft.fftn(image), shift)))
+        electrons = np.maximum(moved, 0) + BACKGROUND_E
+        adu = GAIN * (rng.poisson(electrons) + rng.normal(0, READ_NOISE, electrons.shape)) + OFFSET
+        channels.append(np.clip(np.round(adu), 0, np.iinfo(dtype).max))
+    return np.stack(channels).astype(dtype)

@@ -45,6 +45,7 @@ def files(tmp_path, demo):
     _descriptions(tmp_path)
     _coloc_files(tmp_path, cob.shape[1:])
     _settings_files(tmp_path, cob)
+    _registration_file(tmp_path)
     _odd_files(tmp_path)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
     paths["out"] = tmp_path / "m.json"
@@ -103,6 +104,14 @@ def _settings_files(folder: Path, cob) -> None:
     matrix["provenance"] = {"acquisition": {"source": "control.ome.tif", "image": {}, "missing": [], "channels": {
         name: {"exposure_s": 0.1} for name in names}}}
     (folder / "settings_matrix.json").write_text(json.dumps(matrix))
+
+
+def _registration_file(folder: Path) -> None:
+    """A registration measured on images of another size (16 x 16) than the demo's."""
+    from unmix.measure.registration import Registration
+
+    Registration(("blue450", "green525", "orange600"), "blue450", np.zeros((3, 3)), (16, 16)).save(
+        folder / "small_registration.json")
 
 
 def _apply(files, matrix, image="cob"):
@@ -248,6 +257,18 @@ BAD_INPUT = {
     "coloc settings differ, strict": (lambda f: ["coloc", f["slow"], "--matrix", Path(f["out"]).parent /
                                                  "settings_matrix.json", "--labels", "Cobaltin,Emberin",
                                                  "--strict-settings"], "slow.ome.tif"),
+    "align channels not the matrix's": (lambda f: ["align", "--beads", f["renamed"], "--matrix",
+                                                   Path(f["out"]).parent / "coloc_matrix.json", "-o", f["out"]],
+                                        "renamed.ome.tif"),
+    "align too few beads": (lambda f: ["align", "--beads", f["dark"], "-o", f["out"]], "need at least 5"),
+    "apply registration of another size": (lambda f: _apply(f, "coloc_matrix") + [
+        "--registration", Path(f["out"]).parent / "small_registration.json"], "measured on 16 x 16"),
+    "measure registration of another size": (lambda f: _measure(f"A={f['cob']}", extra=[
+        "--registration", Path(f["out"]).parent / "small_registration.json", "-o", f["out"]]), "Cobaltin_field1"),
+    "registration not json": (lambda f: _apply(f, "coloc_matrix") + ["--registration", f["notes"]], "notes.tif"),
+    "coloc registration of another size": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--registration",
+                                                            Path(f["out"]).parent / "small_registration.json"),
+                                           "measured on 16 x 16"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],

@@ -8,7 +8,8 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from .args import add_image_options, add_settings_option, name_list, numbers, one_line
+from .args import (add_image_options, add_registration_option, add_settings_option, name_list, numbers,
+                   one_line, registration_from)
 
 
 def add_parsers(sub, common) -> None:
@@ -26,6 +27,7 @@ def add_parsers(sub, common) -> None:
     apply.add_argument("--residual", action="store_true", help="also write the per-pixel misfit (RMS residual)")
     apply.add_argument("--saturation", metavar="V[,V...]", help="saturation level, one or one per channel")
     add_settings_option(apply)
+    add_registration_option(apply)
     add_image_options(apply)
     apply.set_defaults(run=run_apply)
 
@@ -60,7 +62,8 @@ def run_apply(args) -> int:
                    channels=matrix.channels, channel_names=name_list(args.channel_names))
     settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
                              residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
-                             axes=args.axes, channel_names=name_list(args.channel_names))
+                             axes=args.axes, channel_names=name_list(args.channel_names),
+                             registration=registration_from(args))
     penalty = matrix.noise_penalty()
     if not args.quiet:
         print(f"Matrix {args.matrix}: {len(matrix.labels)} labels in {len(matrix.channels)} channels; "

@@ -8,7 +8,8 @@ import numpy as np
 
 from ..coloc.verdict import ROUNDS
 from ..errors import InputError
-from .args import add_image_options, add_settings_option, check_output, name_list
+from .args import (add_image_options, add_registration_option, add_settings_option, check_output, name_list,
+                   registration_from)
 
 
 def add_parsers(sub, common) -> None:
@@ -46,6 +47,7 @@ def add_parsers(sub, common) -> None:
     coloc.add_argument("--csv", metavar="OUT.csv", help="write one row per image x pair (x object)")
     coloc.add_argument("--histograms", metavar="DIR", help="write 2-D histograms before/after as PNG")
     add_settings_option(coloc)
+    add_registration_option(coloc)
     add_image_options(coloc)
     coloc.set_defaults(run=run_coloc)
 
@@ -163,9 +165,15 @@ def run_coloc(args) -> int:
     check_settings(matrix.provenance.get("acquisition"), args.inputs, strict=args.strict_settings,
                    reference_name=args.matrix, channels=matrix.channels, channel_names=name_list(args.channel_names))
     flats = _flats(args, matrix, args.inputs)
+    registration = registration_from(args)
     results = []
     for path in args.inputs:
         raw = _plane(path, args, list(matrix.channels))
+        if registration is not None:
+            from ..measure.registration import register_plane
+
+            registration.check(matrix.channels, raw.shape, path)
+            raw = register_plane(raw, matrix.channels, registration, matrix.saturation)
         unmixed = _plane(args.unmixed, args, list(matrix.labels), "unmixed image") if args.unmixed else None
         image = prepare_image(raw, matrix, flat=flats, unmixed=unmixed, seed=args.seed)
         mask = _mask_plane(args.mask, raw.shape[1:], "--mask").astype(bool) if args.mask else None

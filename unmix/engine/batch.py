@@ -77,6 +77,7 @@ class ApplySettings:
     saturation: object = None  # one level, or one per channel; None: detected
     axes: str | None = None
     channel_names: Sequence[str] | None = None
+    registration: object = None  # unmix.measure.registration.Registration, applied to every block
     batch_blocks: int = field(default_factory=lambda: max(2, 2 * (os.cpu_count() or 1)))
 
 
@@ -204,16 +205,42 @@ def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
     return mask, [ChannelPeak(float(m), int(a), int(c)) for m, a, c in zip(maxima, at_maxima, counts)]
 
 
+def _read_registered(path: str, series: int, axes, channel_names, channels, key, levels, registration,
+                     z_position) -> np.ndarray:
+    """One block (C, Y, X), registered when a registration is given (NaN where a channel has no data).
+
+    `z_position` is (index of Z in `key`, number of planes) for stacks: axial
+    shifts then read the neighbouring planes of the shifted channel.
+    """
+    from ..io.images import read_block
+
+    block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)
+    if registration is None:
+        return block
+    from ..measure.registration import register_plane
+
+    neighbour = None
+    if z_position is not None:
+        axis, n_z = z_position
+
+        def neighbour(c, dz):
+            z = key[axis] + dz
+            if not 0 <= z < n_z:
+                return None
+            return read_block(path, series, key[:axis] + (z,) + key[axis + 1:], channels=[channels[c]], axes=axes,
+                              channel_names=channel_names)[0]
+
+    return register_plane(block, channels, registration, levels, neighbour)
+
+
 def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                 background, levels, residual: bool):
-    """Read one block from the file and unmix it.
+                 background, levels, residual: bool, registration=None, z_position=None):
+    """Read one block from the file (registered, when a registration is given) and unmix it.
 
     Returns the abundances (K, Y, X), the saturation mask at `levels`, the
     misfit (or None), the number of NaN pixels and the peak of each channel.
     """
-    from ..io.images import read_block
-
-    block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)  # (C, Y, X)
+    block = _read_registered(path, series, axes, channel_names, channels, key, levels, registration, z_position)
     abundances = unmixer.unmix(block, background)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
     misfit = unmixer.residual(block, abundances, background) if residual else None
@@ -222,13 +249,14 @@ def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unm
 
 
 def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                           background, levels, residual: bool, destinations: dict):
+                           background, levels, residual: bool, registration, z_position, destinations: dict):
     """:func:`_unmix_block`, then store the block in its chunk of each output array (distinct
     chunks: tasks write in parallel); returns the figures only, with the saturated count."""
     import zarr
 
     abundances, saturated, misfit, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key,
-                                                             unmixer, background, levels, residual)
+                                                             unmixer, background, levels, residual, registration,
+                                                             z_position)
     zarr.open_array(destinations["unmixed"], mode="r+")[key] = abundances
     zarr.open_array(destinations["saturation"], mode="r+")[key] = saturated[None]
     if misfit is not None:
@@ -236,11 +264,10 @@ def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels
     return None, int(np.count_nonzero(saturated)), None, nan, peaks
 
 
-def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels):
-    from ..io.images import read_block
-
-    return _mask_and_peaks(read_block(path, series, key, channels=channels, axes=axes,
-                                      channel_names=channel_names), levels)[0]
+def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels, registration=None,
+                z_position=None):
+    return _mask_and_peaks(_read_registered(path, series, axes, channel_names, channels, key, levels, registration,
+                                            z_position), levels)[0]
 
 
 def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
@@ -261,7 +288,12 @@ def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerp
                        else str(Path(settings.background).resolve()), "levels": [float(b) for b in background]},
         "noise_penalty": dict(zip(matrix.labels, map(float, matrix.noise_penalty()))),
         "condition_number": matrix.condition_number(),
+        "registration": _registration_record(settings),
     }
+
+
+def _registration_record(settings: ApplySettings) -> dict | None:
+    return None if settings.registration is None else settings.registration.to_dict()
 
 
 def _same_run(existing: dict | None, matrix_sha: str, fingerprint: str, settings: ApplySettings) -> bool:
@@ -269,7 +301,8 @@ def _same_run(existing: dict | None, matrix_sha: str, fingerprint: str, settings
         return False
     return (existing.get("matrix", {}).get("sha256") == matrix_sha
             and existing.get("input", {}).get("fingerprint") == fingerprint
-            and existing.get("method") == settings.method)
+            and existing.get("method") == settings.method
+            and existing.get("registration") == _registration_record(settings))
 
 
 def _planes_writer(blocks, n_labels: int):
@@ -304,6 +337,7 @@ class _SeriesJob:
     background: np.ndarray
     levels: np.ndarray
     provenance: dict
+    z_position: tuple | None = None  # (index of Z in a block key, planes) for a registered stack
 
 
 @dataclass
@@ -354,7 +388,8 @@ def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, un
     task, extra = (_unmix_block, ()) if destinations is None else (_unmix_block_into_zarr, (destinations,))
     for key, (abundances, saturated, misfit, nan, peaks) in _in_batches(
             list(_block_keys(job.image)), settings.batch_blocks, task,
-            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual, *extra), compute):
+            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual, settings.registration,
+                         job.z_position, *extra), compute):
         tally.add(nan, saturated if isinstance(saturated, int) else int(np.count_nonzero(saturated)), peaks)
         yield key, abundances, saturated, misfit
 
@@ -369,7 +404,7 @@ def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, s
     source = _task_source(job, path, matrix, settings)
     tally.saturated = 0
     for key, mask in _in_batches(list(_block_keys(job.image)), settings.batch_blocks, _mask_block,
-                                 lambda key: (*source, key, levels), compute):
+                                 lambda key: (*source, key, levels, settings.registration, job.z_position), compute):
         tally.saturated += int(np.count_nonzero(mask))
         yield key, mask
 
@@ -735,10 +770,14 @@ def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, na
     jobs = []
     for image in images:
         image = _matched(matrix, image)
+        if settings.registration is not None:
+            settings.registration.check(image.channel_names, image.data.shape, image.name)
         background = _background_for(matrix, image, settings)
+        z_position = (image.axes.index("Z"), image.data.shape[image.axes.index("Z")]) if "Z" in image.axes else None
         jobs.append(_SeriesJob(image, image.series, background,
                                _provisional_levels(matrix, image, settings.saturation),
-                               _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series)))
+                               _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series),
+                               z_position))
     outdir.mkdir(parents=True, exist_ok=True)
     if is_zarr_path(path):
         totals = _write_zarr_outputs(jobs, matrix, unmixer, path, settings, names, compute,

@@ -223,13 +223,21 @@ def _crop_for_registration(shape, usable_per_block: np.ndarray, block_size: int,
 
 def _field_statistics(image: Image, primary: int, levels: np.ndarray, background: np.ndarray | None,
                       settings: MeasureSettings, allow_nonfinite: bool,
-                      summaries: list | None = None, min_proxy: float = -np.inf) -> _FieldResult:
+                      summaries: list | None = None, min_proxy: float = -np.inf, registration=None) -> _FieldResult:
     stack = _stack(image)
+    if summaries is None:
+        summaries = _summaries(stack)  # levels, clipping and saturation are judged on the pixels as acquired
+    n_z = image.data.shape[image.axes.index("Z")] if "Z" in image.axes else 1
+    if registration is not None:
+        from .registration import register_stack
+
+        registration.check(image.channel_names, stack.shape, image.name, "this control")
+        n_times = stack.shape[1] // n_z
+        stack = register_stack(stack, image.channel_names, registration, n_z, levels)
+        n_z = stack.shape[1] // n_times  # the planes that every channel covers
     n_channels, n_planes, ny, nx = stack.shape
     if ny < 3 or nx < 3:
         raise InputError(f"{image.name}: image is only {ny} x {nx} pixels; a control needs at least 3 x 3")
-    if summaries is None:
-        summaries = _summaries(stack)
     if background is None:
         background = np.array([s.background for s in summaries])
     if not np.all(np.isfinite(background)):
@@ -276,7 +284,6 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
 
         rows, cols = _crop_for_registration((ny, nx), stats[:, _N].reshape(blocks_y, blocks_x), block)
         # Laterally on the middle plane; axially on the z-stack of the middle time point.
-        n_z = image.data.shape[image.axes.index("Z")] if "Z" in image.axes else 1
         middle = (n_planes // n_z) // 2 * n_z
         planes = slice(middle, middle + n_z) if n_z >= _MIN_PLANES_FOR_AXIAL else slice(n_planes // 2,
                                                                                         n_planes // 2 + 1)
@@ -763,7 +770,7 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             summaries = summaries or _summaries(_stack(image))
             stack_levels = np.array([saturation_level([s]) for s in summaries])
         return _field_statistics(image, primary_index, stack_levels, fixed_background, settings,
-                                 allow_nonfinite, summaries)
+                                 allow_nonfinite, summaries, registration=registration)
 
     results: dict[str, list[_FieldResult]] = {}
     field_sources: dict[str, list] = {}
@@ -830,7 +837,7 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             images = [image for _, image in field_images(label)]
             for i in redo:
                 fields[i] = _field_statistics(images[i], p, levels, fixed_background, settings,
-                                              allow_nonfinite)
+                                              allow_nonfinite, fields[i].summaries, registration=registration)
         primaries[label] = channels[p]
         brightest_of[label] = brightest
         where = ", ".join(dict.fromkeys(f.source for f in fields))
@@ -841,8 +848,9 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         if corrected:
             before = sum(f.n_usable for f in fields)
             images = [image for _, image in field_images(label)]
-            fields[:] = [_field_statistics(image, p, levels, fixed_background, settings, allow_nonfinite,
-                                           min_proxy=threshold) for image, threshold in zip(images, minimum_proxy)]
+            fields[:] = [_field_statistics(image, p, levels, fixed_background, settings, allow_nonfinite, f.summaries,
+                                           min_proxy=threshold, registration=registration)
+                         for image, threshold, f in zip(images, minimum_proxy, fields)]
             after = sum(f.n_usable for f in fields)
             names = ", ".join(channels[c] for c in corrected)
             if after < settings.min_pixels:

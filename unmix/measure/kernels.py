@@ -204,3 +204,23 @@ def block_weights(copies, n_blocks, random_bits):
                 word += 1
             weights[r, (low * np.uint64(n_blocks)) >> np.uint64(32)] += 1.0
     return weights
+
+
+@njit(cache=True, nogil=True)
+def block_maxima(plane, block):
+    """Maximum of every `block` x `block` tile of a 2-D plane (partial tiles at the edges dropped), in
+    one pass over the rows."""
+    ny, nx = plane.shape[0] // block, plane.shape[1] // block
+    out = np.empty((ny, nx), plane.dtype)
+    for by in range(ny):
+        for bx in range(nx):
+            out[by, bx] = plane[by * block, bx * block]
+        for y in range(by * block, by * block + block):
+            row = plane[y]
+            for bx in range(nx):
+                best = out[by, bx]
+                for x in range(bx * block, bx * block + block):
+                    if row[x] > best:
+                        best = row[x]
+                out[by, bx] = best
+    return out
