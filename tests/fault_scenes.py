@@ -87,3 +87,27 @@ def bead_field(seed: int, shifts, *, shape=(256, 256), beads: int = 40, peak: fl
         adu = GAIN * (rng.poisson(electrons) + rng.normal(0, READ_NOISE, electrons.shape)) + OFFSET
         channels.append(np.clip(np.round(adu), 0, np.iinfo(dtype).max))
     return np.stack(channels).astype(dtype)
+
+
+def cells(rng, shape, count: int = 10, radius=(14, 26), psf_sigma: float = 1.5):
+    """Round cells covering about a quarter of the field: their mask and a cellular autofluorescence map
+    (textured, 0.5-1 inside, blurred by the optics, peak about 1)."""
+    yy, xx = np.indices(shape)
+    mask = np.zeros(shape, bool)
+    for _ in range(count):
+        cy, cx = (rng.uniform(r, n - r) for n, r in zip(shape, (radius[1],) * 2))
+        mask |= (yy - cy) ** 2 + (xx - cx) ** 2 <= rng.uniform(*radius) ** 2
+    texture = ndimage.gaussian_filter(rng.random(shape), 3.0)
+    texture = 0.5 + 0.5 * (texture - texture.min()) / np.ptp(texture)
+    signal = ndimage.gaussian_filter(mask * texture, psf_sigma)
+    return mask, signal / signal.max()
+
+
+def mixed_field(rng, columns, maps, *, between_e: float = 20.0) -> np.ndarray:
+    """A field (C, Y, X) in ADU of labels with the bleed-through `columns` (C x K, each 1 at its primary)
+    and abundance `maps` (K, Y, X, ADU in the primary), over a uniform level `between_e` electrons (the
+    medium between cells), with the camera model above."""
+    columns = np.asarray(columns, dtype=float)
+    electrons = np.tensordot(columns, np.asarray(maps, dtype=float) / GAIN, axes=(1, 0)) + between_e
+    adu = GAIN * (rng.poisson(np.maximum(electrons, 0)) + rng.normal(0, READ_NOISE, electrons.shape)) + OFFSET
+    return np.clip(np.round(adu), 0, 65535).astype(np.uint16)

@@ -269,6 +269,15 @@ BAD_INPUT = {
     "coloc registration of another size": (lambda f: _coloc(f, "--labels", "Cobaltin,Emberin", "--registration",
                                                             Path(f["out"]).parent / "small_registration.json"),
                                            "measured on 16 x 16"),
+    "autofluorescence with as many labels as channels": (lambda f: _measure(
+        f"Cobaltin={f['cob']}", f"Fernlight={f['fern']}", f"Emberin={f['emb']}",
+        extra=["--unstained", f["unstained"], "--autofluorescence", "Glow", "-o", f["out"]]),
+        "--autofluorescence Glow: 3 channels cannot separate 3 labels"),
+    "autofluorescence without unstained": (lambda f: _measure(f"Cobaltin={f['cob']}", extra=[
+        "--autofluorescence", "Glow", "-o", f["out"]]), "needs --unstained"),
+    "autofluorescence mask of another size": (lambda f: _measure(f"Cobaltin={f['cob']}", extra=[
+        "--unstained", f["unstained"], "--autofluorescence", "Glow", "--autofluorescence-mask", f["small_mask"],
+        "-o", f["out"]]), "--autofluorescence-mask"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare not a matrix": (lambda f: ["compare", f["notes"], f["notes"], "-o", Path(f["out"]).parent / "cmp"],

@@ -441,3 +441,82 @@ def test_controls_settings_are_stored_and_differences_between_controls_warned(tm
         matrix = measure_files({"A": paths[:2], "B": paths[2:]}, primary={"B": "ch1"}, settings=FAST)
     acquisition = matrix.provenance["acquisition"]
     assert acquisition["channels"]["ch1"]["exposure_s"] == 0.1 and acquisition["source"] == "c1.ome.tif"
+
+
+# --- autofluorescence as a label ------------------------------------------------------------------------
+
+_AF_CHANNELS = ("c0", "c1", "c2", "c3")
+_COLUMNS = {"A": [1.0, 0.3, 0.05, 0.0], "B": [0.02, 0.1, 1.0, 0.25]}
+_SIGNATURE = np.array([0.7, 1.0, 0.8, 0.4])  # cellular autofluorescence, 1 in its brightest channel
+
+
+def _af_scene(seed):
+    """Controls of A and B, an unstained specimen whose cells autofluoresce, over a uniform medium level
+    (simulation with known truth, tests/fault_scenes.py)."""
+    from fault_scenes import cells, mixed_field, spots
+
+    rng = np.random.default_rng(seed)
+    controls = {label: [Image(mixed_field(rng, np.array(column)[:, None], [spots(rng, (256, 256)) * 800]), "CYX",
+                              _AF_CHANNELS, source=f"{label}{f}.tif") for f in range(2)]
+                for label, column in _COLUMNS.items()}
+    mask, autofluorescence = cells(rng, (256, 256))
+    unstained = Image(mixed_field(rng, _SIGNATURE[:, None], [autofluorescence * 300]), "CYX", _AF_CHANNELS,
+                      source="unstained.tif")
+    return controls, unstained, rng
+
+
+def test_autofluorescence_signature_is_recovered_within_its_interval():
+    controls, unstained, _ = _af_scene(5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", InputWarning)
+        matrix = measure_matrix(controls, unstained=unstained, autofluorescence="Cellglow", settings=FAST)
+    assert matrix.labels == ("A", "B", "Cellglow") and matrix.primary["Cellglow"] == "c1"
+    k = matrix.labels.index("Cellglow")
+    assert np.all((matrix.ci95_low[:, k] <= _SIGNATURE) & (_SIGNATURE <= matrix.ci95_high[:, k]))
+    # The background is the level between the cells (offset 100 ADU + 20 electrons x 2 ADU of medium).
+    np.testing.assert_allclose(matrix.background, 140.0, atol=1.0)
+    assert matrix.qc["labels"]["Cellglow"]["role"] == "autofluorescence"
+
+
+def test_unmixing_with_the_autofluorescence_label_removes_it():
+    # A sample of A, B and cellular autofluorescence. With the background rule alone (the unstained
+    # median) the cells' autofluorescence is unmixed into A and B; with the autofluorescence label, A's
+    # abundance in the cells is unbiased and the least-squares misfit is at the level of the pixel noise
+    # (simulation with known truth; the misfit's expected mean square for pure noise is the noise variance
+    # x (C - K) / C, numpy.linalg.lstsq as the reference solver).
+    from fault_scenes import cells, mixed_field, spots
+
+    controls, unstained, rng = _af_scene(6)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", InputWarning)
+        with_label = measure_matrix(controls, unstained=unstained, autofluorescence="Cellglow", settings=FAST)
+        background_only = measure_matrix(controls, unstained=unstained, settings=FAST)
+    mask, autofluorescence = cells(rng, (256, 256))
+    maps = np.stack([spots(rng, (256, 256)) * 600, spots(rng, (256, 256)) * 600, autofluorescence * 300])
+    truth = np.column_stack([_COLUMNS["A"], _COLUMNS["B"], _SIGNATURE])
+    sample = mixed_field(rng, truth, maps).astype(float)
+    inside = mask & (maps[0] < 1)  # cell pixels without A: A's abundance should be 0 there
+
+    def unmixed(matrix):
+        signal = (sample - matrix.background[:, None, None]).reshape(4, -1)
+        abundances, *_ = np.linalg.lstsq(matrix.matrix, signal, rcond=None)
+        misfit = signal - matrix.matrix @ abundances
+        return abundances.reshape((-1,) + sample.shape[1:]), misfit.reshape(sample.shape)
+
+    a_label, misfit = unmixed(with_label)
+    a_background, _ = unmixed(background_only)
+    noise_sd = np.sqrt(2.0 * (sample[:, inside] - 100).mean() + (2.0 * 3.0) ** 2)  # Poisson + read, ADU
+    assert abs(a_label[0][inside].mean()) < 3.0   # ADU; the cells' autofluorescence peaks at about 210 in c0
+    assert a_background[0][inside].mean() > 20.0  # the autofluorescence unmixed into A
+    rms = np.sqrt(np.mean(misfit[:, inside] ** 2))
+    assert rms == pytest.approx(noise_sd * np.sqrt(1 / 4), rel=0.25)
+
+
+def test_autofluorescence_needs_a_spare_channel():
+    controls, unstained, _ = _af_scene(7)
+    controls["C"] = controls["A"]
+    with pytest.raises(InputError, match=r"--autofluorescence Cellglow: 4 channels cannot separate 4 labels plus "
+                                         r"autofluorescence \(needs at least 5 channels\)"):
+        measure_matrix({**controls, "D": controls["B"]}, unstained=unstained, autofluorescence="Cellglow")
+    with pytest.raises(InputError, match="--autofluorescence Cellglow: needs --unstained"):
+        measure_matrix(controls, autofluorescence="Cellglow")

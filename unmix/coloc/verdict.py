@@ -435,6 +435,14 @@ def matrix_warnings(matrix: BleedThroughMatrix) -> list[str]:
     return messages
 
 
+def nuisance_labels(matrix: BleedThroughMatrix) -> tuple[str, ...]:
+    """Labels unmixed only to be taken out (autofluorescence measured as a label): they are judged in a
+    pair only when a pair names them; lists of pairs to judge by default leave them out."""
+    entries = (matrix.qc.get("labels") or {}) if isinstance(matrix.qc, dict) else {}
+    return tuple(label for label in matrix.labels
+                 if isinstance(entries.get(label), dict) and entries[label].get("role") == "autofluorescence")
+
+
 def warn_about_matrix(matrix: BleedThroughMatrix) -> None:
     for message in matrix_warnings(matrix):
         warnings.warn(message, InputWarning, stacklevel=2)

@@ -81,8 +81,8 @@ import numpy as np
 
 from ..errors import InputError, InputWarning
 from ..io.images import Image, read_images
-from .levels import (ChannelSummary, clipped_offset, per_channel_levels, reference_levels, saturation_level,
-                     summarise_channel)
+from .levels import (ChannelSummary, clipped_offset, per_channel_levels, reference_levels, reference_levels_outside,
+                     saturation_level, summarise_channel)
 from ..matrix import BleedThroughMatrix
 from ..threads import THREADS, map_in_threads
 
@@ -223,10 +223,18 @@ def _crop_for_registration(shape, usable_per_block: np.ndarray, block_size: int,
 
 def _field_statistics(image: Image, primary: int, levels: np.ndarray, background: np.ndarray | None,
                       settings: MeasureSettings, allow_nonfinite: bool,
-                      summaries: list | None = None, min_proxy: float = -np.inf, registration=None) -> _FieldResult:
+                      summaries: list | None = None, min_proxy: float = -np.inf, registration=None,
+                      mask: np.ndarray | None = None) -> _FieldResult:
     stack = _stack(image)
     if summaries is None:
         summaries = _summaries(stack)  # levels, clipping and saturation are judged on the pixels as acquired
+    masked_out = 0
+    if mask is not None:
+        # Only the pixels of `mask` (an unstained specimen's cells) count: the others become NaN,
+        # which the pass excludes (with every pixel whose neighbours they are).
+        inside = np.broadcast_to(mask, stack.shape[1:])
+        masked_out = int(np.count_nonzero(~inside & np.all(np.isfinite(stack), axis=0)))
+        stack = np.where(inside, stack, np.nan).astype(np.float32)
     n_z = image.data.shape[image.axes.index("Z")] if "Z" in image.axes else 1
     if registration is not None:
         from .registration import register_stack
@@ -273,6 +281,7 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
             totals = [t + c for t, c in zip(totals, counts)]
     stats = grid.reshape(-1, n_stats)
     n_signal, saturated_signal, channel_sums, n_valid, n_nonfinite = totals
+    n_nonfinite -= masked_out
     if n_nonfinite and not allow_nonfinite:
         raise InputError(
             f"{image.name}: {n_nonfinite} NaN/inf pixels; fix the control or pass --allow-nonfinite to exclude them"
@@ -290,7 +299,7 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
 
         def crop(c):
             window = stack[c, planes, rows, cols].astype(np.float32) - np.float32(background[c])
-            if n_nonfinite:
+            if n_nonfinite or masked_out:
                 window = np.nan_to_num(window, nan=0.0, posinf=0.0, neginf=0.0)
             return np.stack([high_pass(w) for w in window])
 
@@ -677,7 +686,8 @@ def _grid(values) -> list:
 def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=None, saturation=None,
                    primary: Mapping[str, str] | None = None, allow_nonfinite: bool = False,
                    settings: MeasureSettings | None = None, axes: str | None = None,
-                   channel_names: Sequence[str] | None = None, registration=None) -> BleedThroughMatrix:
+                   channel_names: Sequence[str] | None = None, registration=None,
+                   autofluorescence: str | None = None, autofluorescence_mask=None) -> BleedThroughMatrix:
     """Measure the bleed-through matrix from single-label control images.
 
     Parameters
@@ -705,6 +715,15 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         control before it is measured. Without one, a control whose channel
         is shifted from its primary by more than SHIFT_LIMIT is refused; with
         one, the shift left after correction is reported.
+    autofluorescence : str, optional
+        Measure the autofluorescence signature of the cells of `unstained` and
+        add it as a label of this name (needs at least one channel more than
+        the labels). The background subtracted is then the unstained
+        specimen's level between the cells, not its median.
+    autofluorescence_mask : Image, path or array, optional
+        The cells of `unstained` (non-zero pixels); default: thresholded
+        (Otsu's threshold of the smoothed sum of the channels above their
+        background).
 
     Returns
     -------
@@ -748,6 +767,16 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         background_source = "dark"
         reference = _matched(_as_field_images(dark, read_options)[0], channels, "the dark frame")
     fixed_background = reference_levels(_stack(reference), reference.name) if reference is not None else None
+    masks = {}
+    if autofluorescence is not None:
+        from .autofluorescence import cell_mask, check_autofluorescence
+
+        check_autofluorescence(autofluorescence, labels, channels, reference if unstained is not None else None)
+        mask, how = cell_mask(_stack(reference), autofluorescence_mask, reference.name, read_options)
+        fixed_background = reference_levels_outside(_stack(reference), mask, reference.name)
+        labels.append(autofluorescence)
+        sources[autofluorescence] = [reference]
+        masks[autofluorescence] = mask
     # The dark frame fixes the variance at zero signal only when its offset is the background
     # subtracted; above an unstained specimen's level, autofluorescence adds its own shot noise.
     dark_read = None
@@ -764,13 +793,13 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             for image in images:
                 yield source, _matched(image, channels, f"the control of {label!r}")
 
-    def process(image, primary_index, summaries=None):
+    def process(image, primary_index, label, summaries=None):
         stack_levels = fixed_levels
         if stack_levels is None:
             summaries = summaries or _summaries(_stack(image))
             stack_levels = np.array([saturation_level([s]) for s in summaries])
         return _field_statistics(image, primary_index, stack_levels, fixed_background, settings,
-                                 allow_nonfinite, summaries, registration=registration)
+                                 allow_nonfinite, summaries, registration=registration, mask=masks.get(label))
 
     results: dict[str, list[_FieldResult]] = {}
     field_sources: dict[str, list] = {}
@@ -782,12 +811,12 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             if chosen is None:
                 summaries = _summaries(_stack(image))
                 chosen = int(np.argmax([s.mean - s.background for s in summaries]))
-                result = process(image, chosen, summaries)
+                result = process(image, chosen, label, summaries)
                 chosen = int(np.argmax(result.channel_sums))
                 if chosen != result.primary:
-                    result = process(image, chosen, result.summaries)
+                    result = process(image, chosen, label, result.summaries)
             else:
-                result = process(image, chosen)
+                result = process(image, chosen, label)
             results[label].append(result)
             field_sources[label].append(source)
 
@@ -837,7 +866,8 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             images = [image for _, image in field_images(label)]
             for i in redo:
                 fields[i] = _field_statistics(images[i], p, levels, fixed_background, settings,
-                                              allow_nonfinite, fields[i].summaries, registration=registration)
+                                              allow_nonfinite, fields[i].summaries, registration=registration,
+                                              mask=masks.get(label))
         primaries[label] = channels[p]
         brightest_of[label] = brightest
         where = ", ".join(dict.fromkeys(f.source for f in fields))
@@ -849,7 +879,7 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             before = sum(f.n_usable for f in fields)
             images = [image for _, image in field_images(label)]
             fields[:] = [_field_statistics(image, p, levels, fixed_background, settings, allow_nonfinite, f.summaries,
-                                           min_proxy=threshold, registration=registration)
+                                           min_proxy=threshold, registration=registration, mask=masks.get(label))
                          for image, threshold, f in zip(images, minimum_proxy, fields)]
             after = sum(f.n_usable for f in fields)
             names = ", ".join(channels[c] for c in corrected)
@@ -999,8 +1029,12 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
             "blocks": int(sum(f.block_stats.shape[0] for f in fields)),
             "interval_covers": covers,
         }
+        if label in masks:
+            per_label[label].update({"role": "autofluorescence", "cell_pixels": int(np.count_nonzero(masks[label])),
+                                     "cells": how, "nonfinite_pixels": 0})
 
-    flags += _swapped_controls(primaries, brightest_of, per_label, channels)
+    flags += _swapped_controls({k: v for k, v in primaries.items() if k not in masks},
+                               {k: v for k, v in brightest_of.items() if k not in masks}, per_label, channels)
     for message in flags:
         warnings.warn(message, InputWarning, stacklevel=2)
 
@@ -1042,7 +1076,8 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
 
 def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None, saturation=None,
                   primary=None, allow_nonfinite=False, settings=None, axes=None,
-                  channel_names=None, registration=None) -> BleedThroughMatrix:
+                  channel_names=None, registration=None, autofluorescence=None,
+                  autofluorescence_mask=None) -> BleedThroughMatrix:
     """:func:`measure_matrix` on files, with axis and channel-name overrides and full provenance.
 
     Every path is read only when it is processed, so memory holds one
@@ -1056,7 +1091,8 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
     settings = settings or MeasureSettings()
     seen = {}
     all_paths = [(label, path) for label, paths in controls.items() for path in paths]
-    all_paths += [(role, p) for role, p in (("unstained", unstained), ("dark", dark)) if p is not None]
+    all_paths += [(role, p) for role, p in (("unstained", unstained), ("dark", dark),
+                                            ("autofluorescence mask", autofluorescence_mask)) if p is not None]
     for role, path in all_paths:
         identity = str(Path(path).resolve())
         if identity in seen:
@@ -1075,12 +1111,14 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
         matrix = measure_matrix(
             controls, unstained=unstained, dark=dark, saturation=saturation, primary=primary,
             allow_nonfinite=allow_nonfinite, settings=settings, axes=axes, channel_names=channel_names,
-            registration=registration,
+            registration=registration, autofluorescence=autofluorescence,
+            autofluorescence_mask=autofluorescence_mask,
         )
         entries = [future.result() for future in described]
     from ..io.acquisition import combine_settings
 
-    acquisition = combine_settings([path for _, path in all_paths], [role for role, _ in all_paths],
+    imaged = [(role, path) for role, path in all_paths if role != "autofluorescence mask"]
+    acquisition = combine_settings([path for _, path in imaged], [role for role, _ in imaged],
                                    channel_names=channel_names)
     provenance = {
         "created": prov.utc_now(),
@@ -1091,6 +1129,9 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
             "settings": settings.__dict__.copy(), "saturation": saturation, "primary": dict(primary or {}),
             "allow_nonfinite": allow_nonfinite, "axes": axes,
             "channel_names": None if channel_names is None else list(channel_names),
+            "autofluorescence": autofluorescence,
+            "autofluorescence_mask": None if autofluorescence_mask is None else str(autofluorescence_mask),
+            "registration": None if registration is None else registration.to_dict(),
         },
         "acquisition": acquisition,
     }

@@ -279,3 +279,16 @@ def reference_levels(stack: np.ndarray, where: str) -> np.ndarray:
     if not np.all(np.isfinite(level)):
         raise InputError(f"{where}: a channel has no finite pixels; give a valid background image")
     return level
+
+
+def reference_levels_outside(stack: np.ndarray, mask: np.ndarray, where: str) -> np.ndarray:
+    """Per-channel median of an unstained image (channels first) outside `mask` (its cells): the level
+    between the cells, offset plus whatever fluoresces outside them."""
+    outside = ~np.broadcast_to(mask, stack.shape[1:])
+    if not outside.any():
+        raise InputError(f"{where}: the cells cover the whole image; give a field with space between cells "
+                         "(or a mask of the cells)")
+    level = np.array([float(np.median(stack[c][outside])) for c in range(stack.shape[0])])
+    if not np.all(np.isfinite(level)):
+        raise InputError(f"{where}: a channel has no finite pixels between the cells; give a valid unstained image")
+    return level
