@@ -186,3 +186,27 @@ def test_align_measure_and_apply_from_the_command_line(tmp_path, capsys):
     provenance = json.loads(tifffile.TiffFile(tmp_path / "out" / "c0.unmixed.ome.tif").ome_metadata.split(
         "<Description>")[1].split("</Description>")[0].replace("&quot;", '"'))
     assert provenance["registration"]["source"] == "beads"
+
+
+def test_apply_reads_neighbouring_planes_for_an_axial_shift(tmp_path):
+    # A z-stack whose channel b shows a's content one plane deeper; the registration moves b up by one plane
+    # (dz = -1). With an identity matrix the unmixed label of b then equals channel a plane by plane, and the
+    # last plane of b, which has no plane below it, is NaN (simulation with known truth).
+    from unmix.engine.batch import ApplySettings, apply_matrix
+    from unmix.io.images import read_image, write_ome_tiff
+    from unmix.matrix import BleedThroughMatrix
+
+    rng = np.random.default_rng(9)
+    volume = rng.uniform(100, 1000, (6, 32, 32)).astype(np.float32)
+    b = np.empty_like(volume)
+    b[1:], b[0] = volume[:-1], 100.0
+    write_ome_tiff(tmp_path / "stack.ome.tif", Image(np.stack([volume, b]), "CZYX", ("a", "b")))
+    matrix = BleedThroughMatrix(kind="measured", channels=("a", "b"), labels=("A", "B"), primary={"A": "a", "B": "b"},
+                                matrix=np.eye(2), ci95_low=np.eye(2), ci95_high=np.eye(2), background=np.zeros(2),
+                                background_source="dark")
+    registration = Registration(("a", "b"), "a", np.array([[0.0, 0.0, 0.0], [-1.0, 0.0, 0.0]]), (32, 32))
+    apply_matrix(matrix, [tmp_path / "stack.ome.tif"], tmp_path / "out",
+                 settings=ApplySettings(method="ls", registration=registration))
+    out = np.asarray(read_image(tmp_path / "out" / "stack.unmixed.ome.tif").data)  # (C, Z, Y, X)
+    np.testing.assert_allclose(out[1, :-1], volume[:-1], rtol=1e-5)
+    assert np.isnan(out[1, -1]).all()

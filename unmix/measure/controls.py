@@ -228,13 +228,17 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
     stack = _stack(image)
     if summaries is None:
         summaries = _summaries(stack)  # levels, clipping and saturation are judged on the pixels as acquired
-    masked_out = 0
+    # Non-finite pixels as acquired (the mask and the registration below add NaNs of their own).
+    n_nonfinite = int(np.count_nonzero(~np.all(np.isfinite(stack), axis=0))) if stack.dtype.kind == "f" else 0
+    if n_nonfinite and not allow_nonfinite:
+        raise InputError(
+            f"{image.name}: {n_nonfinite} NaN/inf pixels; fix the control or pass --allow-nonfinite to exclude them"
+        )
+    prepared = mask is not None
     if mask is not None:
         # Only the pixels of `mask` (an unstained specimen's cells) count: the others become NaN,
         # which the pass excludes (with every pixel whose neighbours they are).
-        inside = np.broadcast_to(mask, stack.shape[1:])
-        masked_out = int(np.count_nonzero(~inside & np.all(np.isfinite(stack), axis=0)))
-        stack = np.where(inside, stack, np.nan).astype(np.float32)
+        stack = np.where(np.broadcast_to(mask, stack.shape[1:]), stack, np.nan).astype(np.float32)
     n_z = image.data.shape[image.axes.index("Z")] if "Z" in image.axes else 1
     if registration is not None:
         from .registration import register_stack
@@ -242,6 +246,7 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
         registration.check(image.channel_names, stack.shape, image.name, "this control")
         n_times = stack.shape[1] // n_z
         stack = register_stack(stack, image.channel_names, registration, n_z, levels)
+        prepared = True
         n_z = stack.shape[1] // n_times  # the planes that every channel covers
     n_channels, n_planes, ny, nx = stack.shape
     if ny < 3 or nx < 3:
@@ -280,12 +285,7 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
             grid[:by, :bx] += stats.reshape(by, bx, n_stats)
             totals = [t + c for t, c in zip(totals, counts)]
     stats = grid.reshape(-1, n_stats)
-    n_signal, saturated_signal, channel_sums, n_valid, n_nonfinite = totals
-    n_nonfinite -= masked_out
-    if n_nonfinite and not allow_nonfinite:
-        raise InputError(
-            f"{image.name}: {n_nonfinite} NaN/inf pixels; fix the control or pass --allow-nonfinite to exclude them"
-        )
+    n_signal, saturated_signal, channel_sums, n_valid, _ = totals
     n_usable = int(stats[:, _N].sum())
     shift, shift_error = np.full((n_channels, 3), np.nan), np.full((n_channels, 3), np.nan)
     if n_usable:
@@ -299,7 +299,7 @@ def _field_statistics(image: Image, primary: int, levels: np.ndarray, background
 
         def crop(c):
             window = stack[c, planes, rows, cols].astype(np.float32) - np.float32(background[c])
-            if n_nonfinite or masked_out:
+            if n_nonfinite or prepared:
                 window = np.nan_to_num(window, nan=0.0, posinf=0.0, neginf=0.0)
             return np.stack([high_pass(w) for w in window])
 
@@ -897,6 +897,11 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         n_usable = sum(f.n_usable for f in fields)
         n_signal = sum(f.n_signal for f in fields)
         if n_usable < settings.min_pixels:
+            if label in masks:
+                raise InputError(
+                    f"{where}: the cells' autofluorescence ({label!r}) stands clearly above the level between the "
+                    f"cells in only {n_usable} pixels (need {settings.min_pixels}); image the unstained specimen "
+                    "brighter, or leave out --autofluorescence")
             if n_signal and sum(f.saturated_signal[p] for f in fields) >= n_signal - n_usable > 0:
                 reason = "all its signal pixels are saturated"
             else:

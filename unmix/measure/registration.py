@@ -374,7 +374,7 @@ def register_plane(plane: np.ndarray, channel_names: Sequence[str], registration
             low = math.floor(-shift[0])
             weight = -shift[0] - low
             below = source if low == 0 else neighbour(c, low)
-            above = source if low + 1 == 0 else neighbour(c, low + 1)
+            above = below if weight == 0 else (source if low + 1 == 0 else neighbour(c, low + 1))
             if below is None or above is None:
                 out[c] = np.nan
                 continue
