@@ -346,7 +346,7 @@ def test_clipped_offset_that_leaves_too_little_is_refused():
 
 def test_correlated_noise_is_flagged_and_measured_on_a_coarser_grid():
     # Noise smoothed between neighbours (Gaussian sigma 0.7 px: what denoising or deconvolution leave)
-    # breaks the neighbour-mean instrument: on such dim controls it measured a leak of 0.3 about 2-8 %
+    # breaks the neighbour-mean instrument: on such dim controls it measured a leak of 0.3 about 2-11 %
     # low with intervals that missed it. Flagged, and measured from pixels 2 apart, the interval covers it.
     fields = [_fault_image(f, peak=300.0, correlated_sigma=0.7) for f in range(2)]
     matrix, flags = _measured(fields)
