@@ -764,7 +764,7 @@ def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, na
         if same and complete:
             return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
         if not same and not settings.overwrite:
-            raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input or method; "
+            raise InputError(f"{names['unmixed']}: exists and was made from another matrix, input, method or registration; "
                              "pass --overwrite to replace it or choose another -o")
         # Same run, interrupted before its mask was written: done again below.
     jobs = []
