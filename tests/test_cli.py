@@ -46,6 +46,8 @@ def files(tmp_path, demo):
     tifffile.imwrite(tmp_path / "four_d.tif", np.stack([pond, pond]), photometric="minisblack")  # shape only, no axes
     _descriptions(tmp_path)
     _coloc_files(tmp_path, pond.shape[1:])
+    _settings_files(tmp_path, pond)
+    _registration_file(tmp_path)
     _odd_files(tmp_path)
     _unsafe_files(tmp_path, pond)
     paths.update({p.stem.split(".")[0]: p for p in tmp_path.iterdir()})
@@ -124,6 +126,26 @@ def _unsafe_files(folder: Path, pixels) -> None:
     (folder / "long_input").mkdir()
     (folder / "long_input" / ("n" * 240 + ".tif")).write_bytes((folder / "two_channels.ome.tif").read_bytes())
     (folder / "a_file").write_text("not a folder\n")
+
+
+def _settings_files(folder: Path, pixels) -> None:
+    """A sample imaged with twice the controls' exposure in one channel, and a matrix recording the
+    controls' settings (as measure stores them)."""
+    names = ["blue450", "green525", "orange600"]
+    tifffile.imwrite(folder / "slow.ome.tif", pixels, ome=True, metadata={
+        "axes": "CYX", "Channel": {"Name": names}, "Plane": {"ExposureTime": [0.1, 0.4, 0.1]}})
+    matrix = json.loads((folder / "coloc_matrix.json").read_text())
+    matrix["provenance"] = {"acquisition": {"source": "control.ome.tif", "image": {}, "missing": [], "channels": {
+        name: {"exposure_s": 0.1} for name in names}}}
+    (folder / "settings_matrix.json").write_text(json.dumps(matrix))
+
+
+def _registration_file(folder: Path) -> None:
+    """A registration measured on images of another size (16 x 16) than the demo's."""
+    from unmix.measure.registration import Registration
+
+    Registration(("blue450", "green525", "orange600"), "blue450", np.zeros((3, 3)), (16, 16)).save(
+        folder / "small_registration.json")
 
 
 def _apply(files, matrix, image="pond"):
@@ -287,6 +309,34 @@ BAD_INPUT = {
     "report coloc of another matrix": (lambda f: _report(f, "--coloc", f["foreign_coloc"]), "foreign_coloc.json"),
     "report coloc without its matrix": (lambda f: _report(f, "--coloc", f["old_coloc"]), "old_coloc.json"),
     "report sample missing": (lambda f: _report(f, "--sample", "/no/such/sample.tif"), "/no/such/sample.tif"),
+    "apply settings differ, strict": (lambda f: _apply(f, "settings_matrix", image="slow") + ["--strict-settings"],
+                                      "exposure_s is 0.4 in slow.ome.tif"),
+    "apply strict without settings": (lambda f: _apply(f, "coloc_matrix") + ["--strict-settings"],
+                                      "records no acquisition settings"),
+    "coloc settings differ, strict": (lambda f: ["coloc", f["slow"], "--matrix", Path(f["out"]).parent /
+                                                 "settings_matrix.json", "--labels", "Pondpetal,Emberin",
+                                                 "--strict-settings"], "slow.ome.tif"),
+    "align channels not the matrix's": (lambda f: ["align", "--beads", f["renamed"], "--matrix",
+                                                   Path(f["out"]).parent / "coloc_matrix.json", "-o", f["out"]],
+                                        "renamed.ome.tif"),
+    "align too few beads": (lambda f: ["align", "--beads", f["dark"], "-o", f["out"]], "need at least 5"),
+    "apply registration of another size": (lambda f: _apply(f, "coloc_matrix") + [
+        "--registration", Path(f["out"]).parent / "small_registration.json"], "measured on 16 x 16"),
+    "measure registration of another size": (lambda f: _measure(f"A={f['pond']}", extra=[
+        "--registration", Path(f["out"]).parent / "small_registration.json", "-o", f["out"]]), "Pondpetal_field1"),
+    "registration not json": (lambda f: _apply(f, "coloc_matrix") + ["--registration", f["notes"]], "notes.tif"),
+    "coloc registration of another size": (lambda f: _coloc(f, "--labels", "Pondpetal,Emberin", "--registration",
+                                                            Path(f["out"]).parent / "small_registration.json"),
+                                           "measured on 16 x 16"),
+    "autofluorescence with as many labels as channels": (lambda f: _measure(
+        f"Pondpetal={f['pond']}", f"Fernlight={f['fern']}", f"Emberin={f['emb']}",
+        extra=["--unstained", f["unstained"], "--autofluorescence", "Glow", "-o", f["out"]]),
+        "--autofluorescence Glow: 3 channels cannot separate 3 labels"),
+    "autofluorescence without unstained": (lambda f: _measure(f"Pondpetal={f['pond']}", extra=[
+        "--autofluorescence", "Glow", "-o", f["out"]]), "needs --unstained"),
+    "autofluorescence mask of another size": (lambda f: _measure(f"Pondpetal={f['pond']}", extra=[
+        "--unstained", f["unstained"], "--autofluorescence", "Glow", "--autofluorescence-mask", f["small_mask"],
+        "-o", f["out"]]), "--autofluorescence-mask"),
     "compare channels differ": (lambda f: _compare_pair(f), "channels differ"),
     "compare labels differ": (lambda f: _compare_pair(f, labels=True), "labels differ"),
     "compare swapped controls": (lambda f: _compare_pair(f, swapped=True), "swapped controls"),
@@ -582,7 +632,7 @@ def test_matrix_option_has_a_help_line_in_every_subcommand():
     commands = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
     with_matrix = {name: [a for a in sub._actions if "--matrix" in a.option_strings] for name, sub in commands.items()}
     with_matrix = {name: actions[0] for name, actions in with_matrix.items() if actions}
-    assert set(with_matrix) == {"apply", "coloc", "report"}
+    assert set(with_matrix) == {"align", "apply", "coloc", "report"}
     assert all(action.help and len(action.help) > 10 for action in with_matrix.values())
     for name in with_matrix:
         assert "--matrix MATRIX.json" in _run(name, "--help").stdout
@@ -626,3 +676,14 @@ def test_a_short_option_may_carry_its_value(files, tmp_path):
                "--quiet")
     assert run.returncode == 0, run.stderr
     assert (tmp_path / "m.json").exists()
+
+
+def test_settings_difference_is_one_warning_line_per_setting(files, capsys, tmp_path):
+    folder = Path(files["out"]).parent
+    argv = ["apply", "--matrix", folder / "settings_matrix.json", files["slow"], "-o", tmp_path / "unmixed",
+            "--quiet"]
+    assert main([str(a) for a in argv]) == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    settings = [line for line in err if "acquisition settings differ" in line]
+    assert len(settings) == 1 and settings[0].startswith("warning: ")
+    assert "channel green525 exposure_s is 0.4 in slow.ome.tif but 0.1 in" in settings[0]

@@ -301,3 +301,79 @@ def test_an_image_larger_than_the_memory_is_called_so_before_reading(tmp_path, s
             read_images(tmp_path / name)
         assert "damaged" not in str(info.value)
         read_images(tmp_path / name, lazy=True)  # read block by block: no limit
+
+
+# --- acquisition settings from OME metadata ---------------------------------------------------------
+
+def _with_settings(path, exposure=(0.1, 0.2), pinhole=(50.0, 60.0), names=("a", "b"), unit="s"):
+    """Settings written by tifffile's OME writer (reference writer): exposure per plane, channel attributes."""
+    tifffile.imwrite(path, np.zeros((2, 8, 8), np.uint16), ome=True, metadata={
+        "axes": "CYX", "Channel": {"Name": list(names), "PinholeSize": list(pinhole),
+                                   "ExcitationWavelength": [488.0, 561.0], "EmissionWavelength": [525.0, 600.0]},
+        "Plane": {"ExposureTime": list(exposure), "ExposureTimeUnit": [unit, unit]}})
+    return path
+
+
+def test_settings_written_by_tifffiles_ome_writer_are_read_back(tmp_path):
+    from unmix.io.acquisition import read_settings
+
+    settings = read_settings(_with_settings(tmp_path / "s.ome.tif", exposure=(100.0, 250.0), unit="ms"))
+    assert settings["channels"]["a"] == {"exposure_s": pytest.approx(0.1), "pinhole_um": 50.0,
+                                         "excitation_nm": 488.0, "emission_nm": 525.0}
+    assert settings["channels"]["b"]["exposure_s"] == pytest.approx(0.25)
+    assert settings["image"]["pixel_type"] == "uint16"
+
+
+def test_detector_and_light_source_settings_are_read(tmp_path):
+    # OME schema 2016-06: DetectorSettings and LightSourceSettings of a Channel refer to the Instrument's
+    # Detector and Laser by ID (element and attribute names from the OME data model).
+    from unmix.io.acquisition import read_settings
+
+    path = _with_settings(tmp_path / "d.ome.tif")
+    with tifffile.TiffFile(path) as tif:
+        xml = tif.ome_metadata
+    instrument = ('<Instrument ID="Instrument:0"><Detector ID="Detector:0" Type="PMT"/>'
+                  '<Laser ID="LightSource:0" Power="20" PowerUnit="mW" Wavelength="488"/></Instrument>')
+    xml = xml.replace('<Image ID="Image:0"', instrument + '<Image ID="Image:0"', 1)
+    xml = xml.replace('<Pixels ID="Pixels:0"', '<Pixels ID="Pixels:0" SignificantBits="12"', 1)
+    xml = xml.replace('PinholeSize="50.0"><LightPath/>',
+                      'PinholeSize="50.0"><LightSourceSettings ID="LightSource:0" Attenuation="0.05"/>'
+                      '<DetectorSettings ID="Detector:0" Gain="1.5" Voltage="650" Offset="-2" Binning="1x1"/>'
+                      '<LightPath/>', 1)
+    tifffile.tiffcomment(path, xml.encode())
+    channel = read_settings(path)["channels"]["a"]
+    assert channel["detector_voltage_V"] == 650 and channel["detector_gain"] == 1.5
+    assert channel["detector_offset"] == -2 and channel["binning"] == "1x1" and channel["detector_type"] == "PMT"
+    assert channel["light_power_mW"] == 20 and channel["light_attenuation"] == 0.05
+    assert read_settings(path)["image"]["bit_depth"] == 12
+
+
+def test_settings_differences_are_warned_or_refused(tmp_path):
+    from unmix.errors import InputWarning
+    from unmix.io.acquisition import check_settings, read_settings
+
+    reference = read_settings(_with_settings(tmp_path / "control.ome.tif"))
+    same = _with_settings(tmp_path / "same.ome.tif")
+    slower = _with_settings(tmp_path / "slower.ome.tif", exposure=(0.1, 0.4))
+    with pytest.warns(InputWarning, match=r"slower.ome.tif: .*channel b exposure_s is 0.4 in slower.ome.tif but "
+                                          r"0.2 in m.json"):
+        lines = check_settings(reference, [same, slower], reference_name="m.json")
+    assert len(lines) == 1
+    with pytest.raises(InputError, match=r"slower.ome.tif: .*exposure_s.*--strict-settings"):
+        check_settings(reference, [slower], strict=True, reference_name="m.json")
+    bare = tmp_path / "bare.tif"
+    tifffile.imwrite(bare, np.zeros((2, 8, 8), np.uint16))
+    with pytest.warns(InputWarning, match="no acquisition settings in the OME metadata of bare.tif"):
+        check_settings(reference, [bare, bare], reference_name="m.json")
+
+
+def test_settings_of_ome_zarr_come_from_its_ome_xml(tmp_path):
+    # A converted OME-Zarr may keep the OME-XML beside its arrays as OME/METADATA.ome.xml (its layout).
+    from unmix.io.acquisition import read_settings
+
+    source = _with_settings(tmp_path / "s.ome.tif")
+    folder = write_ome_zarr(tmp_path / "s.ome.zarr", Image(np.zeros((2, 8, 8), np.uint16), "CYX", ("a", "b")))
+    (folder / "OME").mkdir()
+    with tifffile.TiffFile(source) as tif:
+        (folder / "OME" / "METADATA.ome.xml").write_text(tif.ome_metadata)
+    assert read_settings(folder)["channels"]["b"]["pinhole_um"] == 60.0

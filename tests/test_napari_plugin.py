@@ -313,3 +313,43 @@ def _matrix_file(folder, saturation=None):
                               matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
                               background=np.full(3, 100.0), background_source="dark",
                               saturation=saturation).save(folder / "m.json")
+
+
+
+def test_measure_widget_autofluorescence_label_and_registration(qtbot, viewer, errors):
+    # Two labels in three channels leave one for the cells' autofluorescence; a registration measured on a
+    # bead layer (invented beads, no shift) is applied to the controls. Same result as the library.
+    import sys
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from fault_scenes import bead_field
+    from unmix_napari.io import CHANNEL_NAMES
+
+    from unmix.measure.registration import fit_from_beads
+
+    from fault_scenes import cells, mixed_field
+
+    names = ["blue450", "green525", "orange600"]
+    viewer.add_image(bead_field(1, [(0.0, 0.0)] * 3), name="beads", metadata={CHANNEL_NAMES: names})
+    rng = np.random.default_rng(2)
+    _, glow = cells(rng, (256, 256))
+    viewer.add_image(mixed_field(rng, np.array([[0.5], [1.0], [0.7]]), [glow * 300]), name="glowing cells",
+                     metadata={CHANNEL_NAMES: names})  # an unstained specimen whose cells autofluoresce
+    widget = MeasureWidget(viewer)
+    widget.set_controls({label: [f"control {label} 1", f"control {label} 2"] for label in ("Pondpetal", "Fernlight")})
+    widget.unstained.setCurrentText("glowing cells")
+    widget.autofluorescence.setText("Glow")
+    widget.bootstrap.setValue(200)
+    widget.beads.setCurrentText("beads")
+    widget.align()
+    qtbot.waitUntil(lambda: not widget.runner.busy and widget.registration is not None, timeout=WAIT_MS)
+    widget.measure()
+    qtbot.waitUntil(lambda: not widget.runner.busy and widget.matrix is not None, timeout=WAIT_MS)
+    assert widget.matrix.labels == ("Pondpetal", "Fernlight", "Glow") and not errors, errors
+    registration = fit_from_beads([layer_image(viewer.layers["beads"])])
+    controls = {label: [layer_image(viewer.layers[f"control {label} {field}"]) for field in (1, 2)]
+                for label in ("Pondpetal", "Fernlight")}
+    reference = measure_matrix(controls, unstained=layer_image(viewer.layers["glowing cells"]), autofluorescence="Glow",
+                               registration=registration, settings=MeasureSettings(n_boot=200))
+    np.testing.assert_allclose(widget.matrix.matrix, reference.matrix)
+    assert widget.matrix.qc["labels"]["Glow"]["role"] == "autofluorescence"

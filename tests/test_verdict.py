@@ -456,3 +456,18 @@ def test_figure_names_are_unique_per_input(tmp_path, capsys):
     assert main(["coloc", str(image_path), "--matrix", str(matrix_path), "--labels", "A,B", "--rounds", "19",
                  "--histograms", str(tmp_path / "afile")]) == 2
     assert "is a file" in capsys.readouterr().err
+
+
+def test_autofluorescence_label_is_a_nuisance_judged_only_when_asked():
+    # A matrix whose second label is the cells' autofluorescence (as measure --autofluorescence writes it): it
+    # is left out of default pairs, and a pair that names it is still judged (independent labels, leak 0.3:
+    # the simulation's known truth is bleed-through only).
+    from dataclasses import replace
+
+    from unmix.coloc.verdict import analyse_pair, nuisance_labels
+
+    scene = pair_scene(3)
+    matrix = measured_matrix(scene, 3)
+    matrix = replace(matrix, qc={"labels": {"A": {"fields": 3}, "B": {"fields": 3, "role": "autofluorescence"}}})
+    assert nuisance_labels(matrix) == ("B",)
+    assert analyse_pair(scene.raw, matrix, ("A", "B"), rounds=199).verdict == "bleed-through-only"

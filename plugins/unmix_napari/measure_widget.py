@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import warnings
 
+import numpy as np
+from napari.layers import Labels as LabelsLayer
 from napari.utils.notifications import show_info
 from qtpy.QtWidgets import (QFileDialog, QFormLayout, QLabel, QLineEdit, QPlainTextEdit, QPushButton, QSpinBox,
                             QTableWidget, QVBoxLayout)
@@ -14,13 +16,19 @@ from .layers import LayerChoice, Panel, Worker, fill_table, guarded, layer_image
 
 
 class MeasureWidget(Panel):
-    """Pick a control layer per label (and an unstained or dark layer), measure, review, save."""
+    """Pick a control layer per label (and an unstained or dark layer), measure, review, save.
+
+    Optionally: the cells' autofluorescence as an extra label (from the unstained layer, cells from a labels
+    layer or thresholded), and a chromatic registration measured on a bead layer (or read from a file)
+    applied to the controls first.
+    """
 
     def __init__(self, napari_viewer):
         super().__init__()
         self.viewer = napari_viewer
         self.runner = Worker()
         self.matrix = None
+        self.registration = None
         layout = QVBoxLayout(self.body)
         intro = QLabel("Single-label controls: a label name and a control layer per row (several rows with one "
                        "label are several fields of it)")
@@ -40,10 +48,23 @@ class MeasureWidget(Panel):
         self.bootstrap = QSpinBox()
         self.bootstrap.setRange(100, 10000)
         self.bootstrap.setValue(1000)
+        self.autofluorescence = QLineEdit()
+        self.autofluorescence.setPlaceholderText("none (name it to add it as a label)")
+        self.cells = LayerChoice(napari_viewer, types=(LabelsLayer,), optional=True)
+        self.beads = LayerChoice(napari_viewer, optional=True)
+        self.registration_path = QLineEdit()
+        self.registration_path.setPlaceholderText("none, or a file from 'unmix align'")
         references.addRow("Unstained specimen", self.unstained)
         references.addRow("Dark frame", self.dark)
+        references.addRow("Autofluorescence label", self.autofluorescence)
+        references.addRow("Cells of the unstained (optional)", self.cells)
+        references.addRow("Bead image (registration)", self.beads)
+        references.addRow("or a registration file", self.registration_path)
         references.addRow("Bootstrap replicates", self.bootstrap)
         layout.addLayout(references)
+        align = QPushButton("Measure the registration on the beads")
+        align.clicked.connect(self.align)
+        layout.addWidget(align)
         self.measure_button = QPushButton("Measure the bleed-through matrix")
         self.measure_button.clicked.connect(self.measure)
         layout.addWidget(self.measure_button)
@@ -98,15 +119,49 @@ class MeasureWidget(Panel):
         unstained = self.unstained.layer()
         dark = self.dark.layer()
         settings = MeasureSettings(n_boot=self.bootstrap.value())
+        autofluorescence = self.autofluorescence.text().strip() or None
+        cells = self.cells.layer()
+        registration = self.registration
+        if registration is None and self.registration_path.text().strip():
+            from unmix.measure.registration import load_registration
+
+            registration = load_registration(self.registration_path.text().strip())
 
         def work():
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 matrix = measure_matrix(controls, unstained=layer_image(unstained) if unstained else None,
-                                        dark=layer_image(dark) if dark else None, settings=settings)
+                                        dark=layer_image(dark) if dark else None, settings=settings,
+                                        registration=registration, autofluorescence=autofluorescence,
+                                        autofluorescence_mask=None if cells is None else np.asarray(cells.data))
             return matrix, [str(w.message) for w in caught if issubclass(w.category, UserWarning)]
 
         self.runner.start(work, self._show, "Measuring bleed-through")
+
+    @guarded
+    def align(self):
+        """Measure the chromatic registration on the chosen bead layer; measuring then applies it."""
+        from unmix.measure.registration import fit_from_beads
+
+        beads = self.beads.layer()
+        if beads is None:
+            raise ValueError("choose the layer of a multicolour bead image first")
+        image = layer_image(beads)
+
+        def work():
+            return fit_from_beads([image])
+
+        self.runner.start(work, self._show_registration, "Measuring the registration")
+
+    def _show_registration(self, registration):
+        self.registration = registration
+        lines = [f"Registration onto {registration.reference} (applied to the controls when measuring):"]
+        for c, channel in enumerate(registration.channels):
+            dz, dy, dx = registration.shifts[c]
+            lines.append(f"  {channel}: dy {dy:+.2f} px, dx {dx:+.2f} px, dz {dz:+.2f} planes, "
+                         f"residual {registration.residual_px[c]:.2f} px")
+        self.messages.setPlainText("\n".join(lines))
+        show_info("registration measured; Measure applies it to the controls")
 
     def _show(self, result):
         matrix, messages = result

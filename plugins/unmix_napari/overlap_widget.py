@@ -55,16 +55,20 @@ class OverlapWidget(Panel):
         self.refresh_labels()
 
     def refresh_labels(self, matrix=None):
+        from unmix.coloc.verdict import nuisance_labels
+
         matrix = matrix if matrix is not None else session(self.viewer).matrix
         labels = list(matrix.labels) if matrix is not None else []
+        # Autofluorescence measured as a label is offered, but never chosen by default.
+        judged = [label for label in labels if label not in (nuisance_labels(matrix) if matrix is not None else ())]
         for combo, default in ((self.label_a, 0), (self.label_b, 1)):
             current = combo.currentText()
             combo.clear()
             combo.addItems(labels)
             if current in labels:
                 combo.setCurrentText(current)
-            elif len(labels) > default:
-                combo.setCurrentIndex(default)
+            elif len(judged) > default:
+                combo.setCurrentText(judged[default])
 
     def _watch_mask(self, *_):
         """Recompute when the user edits the mask (painting a labels layer, or new data)."""

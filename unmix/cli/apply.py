@@ -9,7 +9,8 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
-from .args import add_image_options, check_output_folder, memory_size, name_list, numbers, one_line
+from .args import (add_image_options, add_registration_option, add_settings_option, check_output_folder,
+                   memory_size, name_list, numbers, one_line, registration_from)
 
 
 def add_parsers(sub, common) -> None:
@@ -29,6 +30,8 @@ def add_parsers(sub, common) -> None:
     apply.add_argument("--memory", metavar="SIZE", default="1G",
                        help="most memory for pixels in flight, e.g. 512M or 4G (1G); fewer blocks are computed "
                             "together, and planes too large for it are cut into strips of rows")
+    add_settings_option(apply)
+    add_registration_option(apply)
     add_image_options(apply)
     apply.set_defaults(run=run_apply)
 
@@ -45,7 +48,7 @@ def run_apply(args) -> int:
     settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
                              residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
                              axes=args.axes, channel_names=name_list(args.channel_names),
-                             memory=memory_size(args.memory))
+                             memory=memory_size(args.memory), registration=registration_from(args))
     matrix = load_matrix(args.matrix)
     inputs = []
     for pattern in args.inputs:
@@ -62,6 +65,10 @@ def run_apply(args) -> int:
             raise InputError(f"{path}: no such file; check the path")
     extra = [] if args.background in ("matrix", "estimate") else [args.background]
     outdir = check_output_folder(args.output, inputs + [args.matrix] + extra)
+    from ..io.acquisition import check_settings
+
+    check_settings(matrix.provenance.get("acquisition"), inputs, strict=args.strict_settings, reference_name=args.matrix,
+                   channels=matrix.channels, channel_names=name_list(args.channel_names))
     penalty = matrix.noise_penalty()
     if not args.quiet:
         print(f"Matrix {args.matrix}: {len(matrix.labels)} labels in {len(matrix.channels)} channels; "

@@ -121,3 +121,23 @@ def add_image_options(parser):
     parser.add_argument("--axes", help="axis letters of the stored arrays, e.g. ZCYX (overrides metadata)")
     parser.add_argument("--channel-names", help="comma-separated channel names (overrides metadata)")
 
+
+
+def add_registration_option(parser):
+    parser.add_argument("--registration", metavar="REGISTRATION.json",
+                        help="per-channel shifts from 'unmix align', applied to the images first")
+
+
+def registration_from(args):
+    """The registration file named by --registration, loaded and validated; None without one."""
+    if not getattr(args, "registration", None):
+        return None
+    from ..measure.registration import load_registration
+
+    return load_registration(args.registration)
+
+
+def add_settings_option(parser):
+    parser.add_argument("--strict-settings", action="store_true",
+                        help="refuse inputs whose acquisition settings (OME metadata) differ from the controls' "
+                             "(default: one warning per difference)")

@@ -13,7 +13,8 @@ import numpy as np
 
 from ..coloc.verdict import ROUNDS
 from ..errors import InputError, InputWarning
-from .args import add_image_options, check_output, name_list
+from .args import (add_image_options, add_registration_option, add_settings_option, check_output, name_list,
+                   registration_from)
 
 
 def add_parsers(sub, common) -> None:
@@ -61,6 +62,8 @@ def add_parsers(sub, common) -> None:
     coloc.add_argument("--csv", metavar="OUT.csv", help="write one row per image x pair (x object, x plane range, "
                                                         "x time point)")
     coloc.add_argument("--histograms", metavar="DIR", help="write 2-D histograms before/after as PNG")
+    add_settings_option(coloc)
+    add_registration_option(coloc)
     add_image_options(coloc)
     coloc.set_defaults(run=run_coloc)
 
@@ -283,8 +286,16 @@ def _run(files, args) -> int:
     if args.histograms and Path(args.histograms).exists() and not Path(args.histograms).is_dir():
         raise InputError(f"--histograms {args.histograms}: is a file; give a folder for the figures")
     warn_about_matrix(matrix)
+    from ..io.acquisition import check_settings
+
+    check_settings(matrix.provenance.get("acquisition"), args.inputs, strict=args.strict_settings,
+                   reference_name=args.matrix, channels=matrix.channels, channel_names=name_list(args.channel_names))
     flats = _flats(files, args, matrix, args.inputs)
+    registration = registration_from(args)
     series_list = [_Series(files, path, args, list(matrix.channels)) for path in args.inputs]
+    if registration is not None:
+        for series in series_list:
+            registration.check(matrix.channels, series.data.shape, series.path)
     _name_figures(series_list)
     jobs = []  # (series, t, pair, object id, region)
     regions_of = {}
@@ -319,7 +330,8 @@ def _run(files, args) -> int:
             unmixed = None
             if args.unmixed:
                 unmixed = _Series(files, args.unmixed, args, list(matrix.labels), "unmixed image").frame(t)
-            sources[key] = prepare_image(series.frame(t), matrix, flat=flats, unmixed=unmixed, seed=args.seed)
+            sources[key] = prepare_image(series.frame(t), matrix, flat=flats, unmixed=unmixed, seed=args.seed,
+                                         registration=registration)
         source = sources[key]
         min_shift = _psf_pixels(args, series) if args.psf else None
         measured = source
@@ -339,7 +351,7 @@ def _run(files, args) -> int:
             continue
         signals = {}
         for t in series.frames:
-            source = prepare_image(series.frame(t), matrix, flat=flats, seed=args.seed)
+            source = prepare_image(series.frame(t), matrix, flat=flats, seed=args.seed, registration=registration)
             for object_id, region in regions_of[series.path]:
                 measured = source
                 if isinstance(region, _ObjectRegion):

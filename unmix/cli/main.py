@@ -18,7 +18,7 @@ import warnings
 
 from .._version import __version__
 from ..errors import InputError
-from . import apply, coloc, demo, measure, optics, report
+from . import align, apply, coloc, demo, measure, optics, report
 from .args import one_line
 
 
@@ -75,7 +75,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser, title="commands")
     sub.required = True
 
-    for module in (measure, apply, coloc, optics, report, demo):
+    for module in (measure, align, apply, coloc, optics, report, demo):
         module.add_parsers(sub, common)
     return parser
 

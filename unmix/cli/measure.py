@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 from ..errors import InputError
-from .args import add_image_options, check_output, label_paths, label_values, name_list, numbers
+from .args import (add_image_options, add_registration_option, check_output, label_paths, label_values,
+                   name_list, numbers, registration_from)
 
 
 def add_parsers(sub, common) -> None:
@@ -18,6 +19,12 @@ def add_parsers(sub, common) -> None:
     measure.add_argument("--primary", action="append", metavar="LABEL=CHANNEL",
                          help="primary channel of LABEL (default: its brightest channel)")
     measure.add_argument("--allow-nonfinite", action="store_true", help="exclude NaN/inf pixels instead of refusing")
+    add_registration_option(measure)
+    measure.add_argument("--autofluorescence", metavar="NAME",
+                         help="add the cells' autofluorescence, measured on --unstained, as a label NAME (needs "
+                              "one channel more than the labels)")
+    measure.add_argument("--autofluorescence-mask", metavar="PATH",
+                         help="the cells of --unstained (non-zero pixels); default: thresholded")
     measure.add_argument("-o", "--output", required=True, metavar="MATRIX.json", help="the matrix file to write")
     measure.add_argument("--csv", metavar="TABLE.csv", help="also write the coefficients and QC as CSV")
     measure.add_argument("--bootstrap", type=int, default=1000, metavar="N", help="bootstrap replicates (1000)")
@@ -45,7 +52,9 @@ def run_measure(args) -> int:
     if not controls:
         raise InputError("--control: give at least one LABEL=PATH")
     inputs = [p for paths in controls.values() for p in paths]
-    inputs += [p for p in (args.unstained, args.dark) if p]
+    inputs += [p for p in (args.unstained, args.dark, args.registration, args.autofluorescence_mask) if p]
+    if args.autofluorescence_mask and not args.autofluorescence:
+        raise InputError("--autofluorescence-mask: give it with --autofluorescence NAME")
     output = check_output(args.output, inputs)
     csv_path = check_output(args.csv, inputs, "--csv") if args.csv else None
     if csv_path is not None and csv_path.resolve() == output.resolve():
@@ -64,7 +73,8 @@ def run_measure(args) -> int:
     except ValueError as exc:
         raise InputError(f"measure options: {exc}") from None
     matrix = measure_files(
-        controls, unstained=args.unstained, dark=args.dark,
+        controls, unstained=args.unstained, dark=args.dark, registration=registration_from(args),
+        autofluorescence=args.autofluorescence, autofluorescence_mask=args.autofluorescence_mask,
         saturation=numbers(args.saturation, "--saturation"),
         primary=label_values(args.primary, "--primary"), allow_nonfinite=args.allow_nonfinite,
         settings=settings, axes=args.axes, channel_names=name_list(args.channel_names),

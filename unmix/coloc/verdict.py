@@ -244,6 +244,7 @@ class ImageSource:
     row_draws: np.ndarray | None  # (D, K, C) for draws of the matrix
     flat_field: str
     matrix_uncertainty: str
+    registration: object = None   # measure.registration.Registration, applied to every plane as it is read
 
     @property
     def shape(self) -> tuple:
@@ -260,6 +261,15 @@ class ImageSource:
 
     def plane(self, z: int) -> Plane:
         raw = np.asarray(self.raw[:, z])
+        if self.registration is not None:
+            from ..measure.registration import register_plane
+
+            n_planes = self.raw.shape[1]
+
+            def neighbour(c, dz):  # channel c's plane dz away, for axial shifts (None beyond the stack)
+                return np.asarray(self.raw[c, z + dz]) if 0 <= z + dz < n_planes else None
+
+            raw = register_plane(raw, self.matrix.channels, self.registration, self.levels, neighbour=neighbour)
         signal = raw.astype(np.float64)
         signal -= self.background[:, None, None]
         saturated = np.zeros(raw.shape[1:], bool)
@@ -332,7 +342,7 @@ def _normalised_flats(flat, shape) -> np.ndarray:
 
 def prepare_image(raw, matrix: BleedThroughMatrix, *, background=None, saturation=None,
                   noise: NoiseModel | None = None, flat=None, unmixed=None, matrix_draws: int = MATRIX_DRAWS,
-                  seed: int = 0) -> ImageSource:
+                  seed: int = 0, registration=None) -> ImageSource:
     """Everything about one image that does not depend on the pair or the region.
 
     Parameters
@@ -348,6 +358,9 @@ def prepare_image(raw, matrix: BleedThroughMatrix, *, background=None, saturatio
         mean 1).
     unmixed : array (K, Y, X) or (K, Z, Y, X), optional
         Non-negative abundances already computed (``unmix apply``); else computed here.
+    registration : Registration, optional
+        Per-channel shifts (``unmix align``), applied to every plane as it is read (axial shifts from the
+        neighbouring planes).
     """
     if raw.ndim not in (3, 4) or raw.shape[0] != len(matrix.channels):
         raise InputError(f"image has shape {tuple(raw.shape)}; coloc needs channels first, (C, Y, X) or "
@@ -381,7 +394,7 @@ def prepare_image(raw, matrix: BleedThroughMatrix, *, background=None, saturatio
     row_draws = None if draws is None else np.stack([unmixing_rows(d) for d in draws])
     return ImageSource(matrix=matrix, raw=raw, background=background, levels=levels, noise=noise, flats=flats,
                        unmixed=unmixed, rows=unmixing_rows(matrix.matrix), row_draws=row_draws, flat_field=method,
-                       matrix_uncertainty=uncertainty)
+                       matrix_uncertainty=uncertainty, registration=registration)
 
 
 # --- judging one pair ---------------------------------------------------------------
@@ -590,6 +603,14 @@ def matrix_warnings(matrix: BleedThroughMatrix) -> list[str]:
         messages.append(f"labels {', '.join(few)} were measured from fewer than 3 control fields: their matrix "
                         "intervals cover sampling error within those fields only, not how fields differ")
     return messages
+
+
+def nuisance_labels(matrix: BleedThroughMatrix) -> tuple[str, ...]:
+    """Labels unmixed only to be taken out (autofluorescence measured as a label): they are judged in a
+    pair only when a pair names them; lists of pairs to judge by default leave them out."""
+    entries = (matrix.qc.get("labels") or {}) if isinstance(matrix.qc, dict) else {}
+    return tuple(label for label in matrix.labels
+                 if isinstance(entries.get(label), dict) and entries[label].get("role") == "autofluorescence")
 
 
 def warn_about_matrix(matrix: BleedThroughMatrix) -> None:

@@ -100,6 +100,7 @@ class ApplySettings:
     channel_names: Sequence[str] | None = None
     memory: int = DEFAULT_MEMORY
     batch_blocks: int | None = None
+    registration: object = None  # unmix.measure.registration.Registration, applied to every block
 
     def __post_init__(self):
         if not isinstance(self.memory, (int, np.integer)) or self.memory < MIN_MEMORY:
@@ -200,7 +201,8 @@ def _identity(matrix_sha: str, fingerprint: str, settings: ApplySettings) -> dic
                 "background": background,
                 "saturation": None if saturation is None else np.atleast_1d(saturation).astype(float).tolist(),
                 "axes": settings.axes,
-                "channel_names": None if settings.channel_names is None else list(settings.channel_names)}
+                "channel_names": None if settings.channel_names is None else list(settings.channel_names),
+                "registration": _registration_record(settings)}
     return json.loads(json.dumps(identity))  # as it reads back from a file
 
 
@@ -378,7 +380,7 @@ def _rows_per_block(image: Image, settings: ApplySettings, n_labels: int | None 
     per_row = _bytes_per_pixel(image.n_channels, n_labels or image.n_channels, np.dtype(image.data.dtype).itemsize,
                                settings) * n_x
     rows = settings.memory // (_IN_FLIGHT * per_row)
-    if rows >= n_y:
+    if rows >= n_y or settings.registration is not None:  # a registered block needs its whole plane
         return int(n_y)
     return int(max(16, rows // 16 * 16))
 
@@ -422,16 +424,42 @@ def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
     return mask, [ChannelPeak(float(m), int(a), int(c)) for m, a, c in zip(maxima, at_maxima, counts)]
 
 
+def _read_registered(path: str, series: int, axes, channel_names, channels, key, levels, registration,
+                     z_position) -> np.ndarray:
+    """One block (C, Y, X), registered when a registration is given (NaN where a channel has no data).
+
+    `z_position` is (index of Z in `key`, number of planes) for stacks: axial
+    shifts then read the neighbouring planes of the shifted channel.
+    """
+    from ..io.images import read_block
+
+    block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)
+    if registration is None:
+        return block
+    from ..measure.registration import register_plane
+
+    neighbour = None
+    if z_position is not None:
+        axis, n_z = z_position
+
+        def neighbour(c, dz):
+            z = key[axis] + dz
+            if not 0 <= z < n_z:
+                return None
+            return read_block(path, series, key[:axis] + (z,) + key[axis + 1:], channels=[channels[c]], axes=axes,
+                              channel_names=channel_names)[0]
+
+    return register_plane(block, channels, registration, levels, neighbour)
+
+
 def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                 background, levels, members: tuple):
-    """Read one block from the file and unmix it.
+                 background, levels, members: tuple, registration=None, z_position=None):
+    """Read one block from the file (registered, when a registration is given) and unmix it.
 
     Returns the planes of each member of the output set named in `members` ({name: (n, Y, X)}),
     the number of NaN pixels and the peak of each channel.
     """
-    from ..io.images import read_block
-
-    block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)  # (C, Y, X)
+    block = _read_registered(path, series, axes, channel_names, channels, key, levels, registration, z_position)
     abundances = unmixer.unmix(block, background)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
     mask, peaks = _mask_and_peaks(block, levels)
@@ -440,13 +468,13 @@ def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unm
 
 
 def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                           background, levels, members: tuple, destinations: dict):
+                           background, levels, members: tuple, registration, z_position, destinations: dict):
     """:func:`_unmix_block`, then store the block in its chunk of each output array (distinct
     chunks: tasks write in parallel); returns only the saturated count in place of the planes."""
     import zarr
 
     planes, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key, unmixer, background,
-                                      levels, members)
+                                      levels, members, registration, z_position)
     for name, values in planes.items():
         array_path = Path(destinations[name])
         if not (array_path / "zarr.json").exists():
@@ -455,11 +483,10 @@ def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels
     return int(np.count_nonzero(planes[_MASK])), nan, peaks
 
 
-def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels):
-    from ..io.images import read_block
-
-    return _mask_and_peaks(read_block(path, series, key, channels=channels, axes=axes,
-                                      channel_names=channel_names), levels)[0]
+def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels, registration=None,
+                z_position=None):
+    return _mask_and_peaks(_read_registered(path, series, axes, channel_names, channels, key, levels, registration,
+                                            z_position), levels)[0]
 
 
 def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerprint: str, settings: ApplySettings,
@@ -476,7 +503,12 @@ def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerp
                        else str(Path(settings.background).resolve()), "levels": [float(b) for b in background]},
         "noise_penalty": dict(zip(matrix.labels, map(float, matrix.noise_penalty()))),
         "condition_number": matrix.condition_number(),
+        "registration": _registration_record(settings),
     }
+
+
+def _registration_record(settings: ApplySettings) -> dict | None:
+    return None if settings.registration is None else settings.registration.to_dict()
 
 
 def _companion_record(name: str, names: dict, identity: dict, counts: dict, levels=None) -> dict:
@@ -513,6 +545,7 @@ class _SeriesJob:
     provenance: dict
     rows: int  # rows per block
     batch: int  # blocks per batch
+    z_position: tuple | None = None  # (index of Z in a block key, planes) for a registered stack
 
 
 @dataclass
@@ -572,7 +605,8 @@ def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, un
     task, extra = (_unmix_block, ()) if destinations is None else (_unmix_block_into_zarr, (destinations,))
     for key, (planes, nan, peaks) in _in_batches(
             list(_block_keys(job.image, job.rows)), job.batch, task,
-            lambda key: (*source, key, unmixer, job.background, job.levels, members, *extra), compute):
+            lambda key: (*source, key, unmixer, job.background, job.levels, members, settings.registration,
+                         job.z_position, *extra), compute):
         if destinations is not None:
             tally.add(nan, planes, peaks)
             yield key, None
@@ -591,7 +625,7 @@ def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, s
     source = _task_source(job, path, matrix, settings)
     tally.saturated = 0
     for key, mask in _in_batches(list(_block_keys(job.image, job.rows)), job.batch, _mask_block,
-                                 lambda key: (*source, key, levels), compute):
+                                 lambda key: (*source, key, levels, settings.registration, job.z_position), compute):
         tally.saturated += int(np.count_nonzero(mask))
         yield key, mask
 
@@ -1024,13 +1058,16 @@ def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, na
     jobs = []
     for image in images:
         image = _matched(matrix, image)
+        if settings.registration is not None:
+            settings.registration.check(image.channel_names, image.data.shape, image.name)
         rows = _rows_per_block(image, settings, len(matrix.labels))
         background = _background_for(matrix, image, settings)
+        z_position = (image.axes.index("Z"), image.data.shape[image.axes.index("Z")]) if "Z" in image.axes else None
         jobs.append(_SeriesJob(image, image.series, background,
                                _provisional_levels(matrix, image, settings.saturation),
                                _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series,
                                            identity),
-                               rows, _blocks_per_batch(image, rows, len(matrix.labels), settings)))
+                               rows, _blocks_per_batch(image, rows, len(matrix.labels), settings), z_position))
     outdir.mkdir(parents=True, exist_ok=True)
     tallies: list = []
 

@@ -2,8 +2,10 @@
 
 In: single-label control images (several fields per label), an unstained
 specimen or a dark frame. Out: a :class:`unmix.matrix.BleedThroughMatrix`
-with 95 % intervals and QC figures. Also the per-channel background and
-saturation levels (:mod:`.levels`) that later stages reuse.
+with 95 % intervals and QC figures (detector faults, registration, fields
+that disagree). Also the per-channel background and saturation levels
+(:mod:`.levels`) that later stages reuse, the chromatic registration
+(:mod:`.registration`) and the autofluorescence label (:mod:`.autofluorescence`).
 """
 
 from .._lazy import lazy_exports
@@ -16,4 +18,11 @@ __getattr__, __dir__, __all__ = lazy_exports(__name__, {
     "summarise_channel": "levels",
     "saturation_level": "levels",
     "per_channel_levels": "levels",
+    "clipped_offset": "levels",
+    "Registration": "registration",
+    "fit_from_beads": "registration",
+    "fit_from_controls": "registration",
+    "load_registration": "registration",
+    "register_stack": "registration",
+    "register_plane": "registration",
 })

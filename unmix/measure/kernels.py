@@ -20,7 +20,7 @@ from numba import njit
 
 @njit(cache=True, nogil=True)
 def field_statistics(stack, background, levels, primary, threshold, check_finite, row_start, row_stop,
-                     split, block_size, n_stats, per_channel_start):
+                     edges, block_size, n_stats, per_channel_start):
     """One pass over rows [row_start, row_stop) of every plane: selection and block sums together.
 
     Flags saturated and non-finite pixels, sums every channel over the valid
@@ -29,9 +29,11 @@ def field_statistics(stack, background, levels, primary, threshold, check_finite
     spatial block. Rows outside the range are only read as neighbours, so the
     rows of a stack can be split among threads (the kernel releases the GIL).
 
-    Block columns (see ``unmix.measure.controls``): n, Sz, Sx, Szx, Sxx, n_lo, Sz_lo,
-    Sx_lo, Szx_lo, then per channel blocks of C columns: Sy, Szy, Sxy, Syy,
-    Sy_lo, Szy_lo; "lo" sums use the pixels whose proxy is below `split`.
+    Block columns (see ``unmix.measure.controls``): n, Sz, Sx, Szx, Sxx, then n_g, Sx_g
+    for the groups g = 0, 1, 2 of pixels whose proxy lies below `edges[0]`, between
+    `edges[0]` and `edges[1]`, between `edges[1]` and `edges[2]` (group 3, above, is the
+    total minus these), then per channel blocks of C columns: Sy, Szy, Sxy, Syy, Sy_0,
+    Sy_1, Sy_2.
 
     Returns
     -------
@@ -124,16 +126,15 @@ def field_statistics(stack, background, levels, primary, threshold, check_finite
                     continue
                 block = block_row + x // block_size
                 p = centre[x] - bp
-                low = 1.0 if z < split else 0.0
+                group = (z >= edges[0]) + (z >= edges[1]) + (z >= edges[2])
                 stats[block, 0] += 1.0
                 stats[block, 1] += z
                 stats[block, 2] += p
                 stats[block, 3] += z * p
                 stats[block, 4] += p * p
-                stats[block, 5] += low
-                stats[block, 6] += low * z
-                stats[block, 7] += low * p
-                stats[block, 8] += low * z * p
+                if group < 3:
+                    stats[block, 5 + 2 * group] += 1.0
+                    stats[block, 6 + 2 * group] += p
                 for c in range(n_channels):
                     yc = stack[c, plane, y, x] - background[c]
                     base = per_channel_start + c
@@ -141,15 +142,15 @@ def field_statistics(stack, background, levels, primary, threshold, check_finite
                     stats[block, base + n_channels] += z * yc
                     stats[block, base + 2 * n_channels] += p * yc
                     stats[block, base + 3 * n_channels] += yc * yc
-                    stats[block, base + 4 * n_channels] += low * yc
-                    stats[block, base + 5 * n_channels] += low * z * yc
+                    if group < 3:
+                        stats[block, base + (4 + group) * n_channels] += yc
     return stats, n_signal, saturated_signal, channel_sums, n_valid, n_nonfinite
 
 
 @njit(cache=True, nogil=True)
 def proxy_sample(stack, background, primary, threshold, row_step):
     """Neighbour-mean proxies above `threshold` on every `row_step`-th row: a sample
-    for the dim/bright split, cheap next to the full pass."""
+    for the edges of the intensity groups, cheap next to the full pass."""
     n_channels, n_planes, ny, nx = stack.shape
     out = np.empty(n_planes * (ny // row_step + 1) * nx, np.float64)
     n = 0
@@ -203,3 +204,23 @@ def block_weights(copies, n_blocks, random_bits):
                 word += 1
             weights[r, (low * np.uint64(n_blocks)) >> np.uint64(32)] += 1.0
     return weights
+
+
+@njit(cache=True, nogil=True)
+def block_maxima(plane, block):
+    """Maximum of every `block` x `block` tile of a 2-D plane (partial tiles at the edges dropped), in
+    one pass over the rows."""
+    ny, nx = plane.shape[0] // block, plane.shape[1] // block
+    out = np.empty((ny, nx), plane.dtype)
+    for by in range(ny):
+        for bx in range(nx):
+            out[by, bx] = plane[by * block, bx * block]
+        for y in range(by * block, by * block + block):
+            row = plane[y]
+            for bx in range(nx):
+                best = out[by, bx]
+                for x in range(bx * block, bx * block + block):
+                    if row[x] > best:
+                        best = row[x]
+                out[by, bx] = best
+    return out
