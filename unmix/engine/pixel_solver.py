@@ -1,150 +1,195 @@
-"""Compiled exact NNLS for one pixel on the normal equations (numba); see :mod:`unmix.engine.solver`.
+"""Compiled exact NNLS per pixel on a precomputed support table (numba); see :mod:`unmix.engine.solver`.
 
-The vectorised kernels of :mod:`unmix.engine.unrolled` hand over the pixels
-they do not resolve themselves.
+Every function here works in the reduced problem of the solver: ``d``
+(K values per pixel, ``Q^T (y - b)``), and the support table ``T[S]`` whose
+row ``j`` gives, as a linear function of ``d``, the abundance of label ``j``
+when ``j`` is in the support ``S`` and the gradient of the objective for
+label ``j`` when it is not. The table is stored transposed
+(``table[S, m, j]``) so that ``T[S] d`` is K contiguous multiply-adds per
+value of ``d``.
 """
 
 from __future__ import annotations
 
+import numpy as np
 from numba import njit
 
-_RELATIVE_TOLERANCE = 1e-9
+TILE = 1024
+# Table lookups allowed per pixel before the active-set iterations are cut short.
+# Never reached in the randomised comparison with scipy (tests/benchmarks/compare_nnls.py).
+LOOKUPS_PER_LABEL = 8
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _solve_support(inverses, mask, zk, a, n_labels):
-    # Index the 3-D array directly: a 2-D view per call would cost reference
-    # counting in the hot loop.
+def _table_times(table, mask, d, v, n_labels):
+    """``v = T[mask] d``: the abundances on the support, the gradient off it."""
     for j in range(n_labels):
-        total = 0.0
-        for m in range(n_labels):
-            total += inverses[mask, j, m] * zk[m]
-        a[j] = total
-
-
-@njit(cache=True, nogil=True, inline="always")
-def _is_optimal(mask, a, zk, gram, n_labels, tol_a, tol_g):
-    """KKT conditions: a >= 0 on the support, gradient G a - z >= 0 off it."""
-    for j in range(n_labels):
-        if mask >> j & 1:
-            if a[j] < -tol_a:
-                return False
-        else:
-            gradient = -zk[j]
-            for m in range(n_labels):
-                gradient += gram[j, m] * a[m]
-            if gradient < -tol_g:
-                return False
-    return True
-
-
-@njit(cache=True, nogil=True, inline="always")
-def _is_feasible(mask, a, n_labels, tol_a):
-    for j in range(n_labels):
-        if mask >> j & 1 and a[j] < -tol_a:
-            return False
-    return True
+        v[j] = 0.0
+    for m in range(n_labels):
+        dm = d[m]
+        for j in range(n_labels):
+            v[j] += table[mask, m, j] * dm
 
 
 @njit(cache=True, nogil=True)
-def _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, x, s):
-    """Lawson-Hanson active-set iterations on the normal equations (Bro & de Jong's FNNLS),
-    each solve a lookup of the precomputed support inverse. Returns True on convergence."""
+def solve_reduced(d, table, tolerance, x, v):
+    """Exact NNLS of one pixel's reduced problem, into `x` (scaled abundances, >= 0).
+
+    Lawson-Hanson active-set iterations (Lawson & Hanson 1974, ch. 23), each
+    least-squares solve a lookup in the shared support table (Bro & de Jong
+    1997), warm-started from the positive part of the unconstrained solution.
+    A value counts as negative below ``-tolerance[S, j] * max|d|``: the
+    rounding error of that table row applied to this pixel.
+
+    Returns the number of table lookups, negated when the iterations were cut
+    short (`x` is then feasible and the objective no worse than at the start).
+    """
+    n_labels = d.size
+    dmax = 0.0
     for j in range(n_labels):
-        x[j] = 0.0
-    passive = 0
-    for _ in range(4 * n_labels):
-        best_j = -1
-        best_w = tol_g
+        dmax = max(dmax, abs(d[j]))
+    full = (1 << n_labels) - 1
+    _table_times(table, full, d, v, n_labels)
+    support = 0
+    optimal = True
+    for j in range(n_labels):
+        if v[j] > 0.0:
+            support |= 1 << j
+            x[j] = v[j]
+        else:
+            x[j] = 0.0
+            if v[j] < -tolerance[full, j] * dmax:
+                optimal = False
+    lookups = 1
+    if optimal:
+        return lookups
+    most = LOOKUPS_PER_LABEL * n_labels
+    entered = -1
+    while lookups < most:
+        # Inner loop: move from x towards the optimum on the support, dropping labels that
+        # reach zero on the way, until that optimum is feasible.
+        while lookups < most:
+            _table_times(table, support, d, v, n_labels)
+            lookups += 1
+            alpha = 2.0
+            leaving = -1
+            for j in range(n_labels):
+                if support >> j & 1 and v[j] < -tolerance[support, j] * dmax:
+                    ratio = x[j] / (x[j] - v[j])
+                    if ratio < alpha:
+                        alpha = ratio
+                        leaving = j
+            if leaving < 0:
+                for j in range(n_labels):
+                    x[j] = max(v[j], 0.0) if support >> j & 1 else 0.0
+                break
+            if leaving == entered and alpha == 0.0:
+                # The label just added is negative at once: its gradient was within
+                # rounding of zero, so the previous support was optimal.
+                return lookups
+            for j in range(n_labels):
+                if support >> j & 1:
+                    x[j] += alpha * (v[j] - x[j])
+                    if j == leaving or x[j] <= 0.0:
+                        support &= ~(1 << j)
+                        x[j] = 0.0
+            entered = -1
+        # x is the optimum on its support: add the label whose gradient is most negative.
+        entered = -1
+        steepest = 0.0
         for j in range(n_labels):
-            if not passive >> j & 1:
-                w = zk[j]
-                for m in range(n_labels):
-                    w -= gram[j, m] * x[m]
-                if w > best_w:
-                    best_w = w
-                    best_j = j
-        if best_j < 0:
-            return True
-        passive |= 1 << best_j
-        for _ in range(4 * n_labels):
-            _solve_support(inverses, passive, zk, s, n_labels)
+            if not support >> j & 1 and v[j] < -tolerance[support, j] * dmax and v[j] < steepest:
+                steepest = v[j]
+                entered = j
+        if entered < 0:
+            return lookups
+        support |= 1 << entered
+    return -lookups
+
+
+@njit(cache=True, nogil=True, fastmath={"contract"})
+def unmix_any(y, qt, offset, scale, table, tolerance, constrained, out, start, stop):
+    """Abundances of pixels ``start:stop`` of `y` (C, N) into `out` (K, N), for any label count.
+
+    ``d = Q^T y - offset`` and the unconstrained solution ``T[full] d`` are
+    formed per tile of pixels in float64 (loops vectorised over the pixels);
+    NNLS then finishes the pixels where that solution is not feasible one by
+    one (:func:`solve_reduced`). The abundances are ``scale * x``. A pixel
+    with a non-finite value in any channel gives NaN in every label. Returns
+    the number of pixels whose iterations were cut short.
+    """
+    n_channels = y.shape[0]
+    n_labels = qt.shape[0]
+    full = (1 << n_labels) - 1
+    # d at [j * TILE + i], the solution at [(K + j) * TILE + i].
+    tile = np.empty(2 * n_labels * TILE)
+    d = np.empty(n_labels)
+    x = np.empty(n_labels)
+    v = np.empty(n_labels)
+    unfinished = 0
+    for t0 in range(start, stop, TILE):
+        n = min(TILE, stop - t0)
+        for j in range(n_labels):
+            part = tile[j * TILE:j * TILE + n]
+            o = offset[j]
+            for i in range(n):
+                part[i] = -o
+        c = 0
+        while c < n_channels:
+            if c + 4 <= n_channels:
+                row0 = y[c, t0:t0 + n]
+                row1 = y[c + 1, t0:t0 + n]
+                row2 = y[c + 2, t0:t0 + n]
+                row3 = y[c + 3, t0:t0 + n]
+                for j in range(n_labels):
+                    part = tile[j * TILE:j * TILE + n]
+                    q0 = qt[j, c]
+                    q1 = qt[j, c + 1]
+                    q2 = qt[j, c + 2]
+                    q3 = qt[j, c + 3]
+                    for i in range(n):
+                        part[i] += (q0 * np.float64(row0[i]) + q1 * np.float64(row1[i])
+                                    + q2 * np.float64(row2[i]) + q3 * np.float64(row3[i]))
+                c += 4
+            else:
+                row0 = y[c, t0:t0 + n]
+                for j in range(n_labels):
+                    part = tile[j * TILE:j * TILE + n]
+                    q0 = qt[j, c]
+                    for i in range(n):
+                        part[i] += q0 * np.float64(row0[i])
+                c += 1
+        for j in range(n_labels):
+            sol = tile[(n_labels + j) * TILE:(n_labels + j) * TILE + n]
+            for i in range(n):
+                sol[i] = 0.0
+            for m in range(n_labels):
+                part = tile[m * TILE:m * TILE + n]
+                t = table[full, m, j]
+                for i in range(n):
+                    sol[i] += t * part[i]
+        for i in range(n):
+            finite = True
+            dmax = 0.0
             feasible = True
             for j in range(n_labels):
-                if passive >> j & 1 and s[j] <= tol_a:
-                    feasible = False
-            if feasible:
+                d[j] = tile[j * TILE + i]
+                finite &= np.isfinite(d[j])
+                dmax = max(dmax, abs(d[j]))
+            for j in range(n_labels):
+                feasible &= tile[(n_labels + j) * TILE + i] >= -tolerance[full, j] * dmax
+            if not finite:
                 for j in range(n_labels):
-                    x[j] = s[j]
-                break
-            alpha = 1.0
-            for j in range(n_labels):
-                if passive >> j & 1 and s[j] <= tol_a:
-                    alpha = min(alpha, x[j] / (x[j] - s[j]))
-            for j in range(n_labels):
-                x[j] += alpha * (s[j] - x[j])
-                if passive >> j & 1 and x[j] <= tol_a:
-                    passive &= ~(1 << j)
-                    x[j] = 0.0
-            if passive == 0:
-                break
-    return False
-
-
-@njit(cache=True, nogil=True)
-def _solve_pixel(zk, gram, inverses, order, a, best, spare):
-    """Exact NNLS for one pixel's ``z`` (finite), into `a`.
-
-    The unconstrained solution; else the positive part of its support; else
-    active-set iterations; each accepted only if it satisfies the KKT
-    conditions. Should all fail (rounding on an ill-conditioned M), every
-    support is enumerated, keeping the feasible one of lowest objective.
-    """
-    n_labels = zk.size
-    full = (1 << n_labels) - 1
-    scale = 0.0
-    for j in range(n_labels):
-        scale = max(scale, abs(zk[j]))
-    _solve_support(inverses, full, zk, a, n_labels)
-    amax = 0.0
-    positive = 0
-    for j in range(n_labels):
-        amax = max(amax, abs(a[j]))
-        if a[j] > 0:
-            positive |= 1 << j
-    tol_a = _RELATIVE_TOLERANCE * amax
-    tol_g = _RELATIVE_TOLERANCE * scale
-    if positive == full:
-        return
-    if positive != 0:
-        _solve_support(inverses, positive, zk, a, n_labels)
-        if _is_optimal(positive, a, zk, gram, n_labels, tol_a, tol_g):
-            return
-    if _active_set(zk, gram, inverses, n_labels, tol_a, tol_g, a, spare):
-        support = 0
-        for j in range(n_labels):
-            if a[j] > 0:
-                support |= 1 << j
-        if _is_optimal(support, a, zk, gram, n_labels, tol_a, tol_g):
-            return
-    # Enumerate supports; keep the feasible one of lowest objective
-    # (-z.a/2 at each support's optimum); the empty support gives 0.
-    best_objective = 0.0
-    for j in range(n_labels):
-        best[j] = 0.0
-    for s in range(order.size):
-        mask = order[s]
-        _solve_support(inverses, mask, zk, a, n_labels)
-        if not _is_feasible(mask, a, n_labels, tol_a):
-            continue
-        objective = 0.0
-        for j in range(n_labels):
-            objective -= 0.5 * zk[j] * a[j]
-        if objective < best_objective:
-            best_objective = objective
-            for j in range(n_labels):
-                best[j] = a[j]
-        if _is_optimal(mask, a, zk, gram, n_labels, tol_a, tol_g):
-            break
-    for j in range(n_labels):
-        a[j] = best[j]
+                    out[j, t0 + i] = np.nan
+            elif not constrained:
+                for j in range(n_labels):
+                    out[j, t0 + i] = scale[j] * tile[(n_labels + j) * TILE + i]
+            elif feasible:
+                for j in range(n_labels):
+                    out[j, t0 + i] = scale[j] * max(tile[(n_labels + j) * TILE + i], 0.0)
+            else:
+                if solve_reduced(d, table, tolerance, x, v) < 0:
+                    unfinished += 1
+                for j in range(n_labels):
+                    out[j, t0 + i] = scale[j] * x[j]
+    return unfinished
