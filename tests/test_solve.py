@@ -11,68 +11,12 @@ import numpy as np
 import pytest
 from scipy.optimize import nnls
 
+from benchmarks.compare_nnls import compare, random_matrix, random_pixels
 from unmix.engine.solver import MAX_LABELS, Unmixer
 from unmix.errors import InputError, InputWarning
 from unmix.matrix import CONDITION_LIMIT, check_unmixable, scaled_condition_number
 
 SCIPY_CASES = json.loads((Path(__file__).parent / "data" / "scipy_nnls_cases.json").read_text())
-EPS = np.finfo(np.float64).eps
-
-
-def _matrix_with_condition(rng, n_channels, n_labels, condition):
-    """A random C x K matrix whose column-scaled condition number is about `condition`, its columns
-    then given random scales over four decades (the solver must not care)."""
-    u, _ = np.linalg.qr(rng.normal(size=(n_channels, n_channels)))
-    v, _ = np.linalg.qr(rng.normal(size=(n_labels, n_labels)))
-    matrix = u[:, :n_labels] @ np.diag(np.geomspace(1.0, 1.0 / condition, n_labels)) @ v.T
-    return matrix * 10.0 ** rng.uniform(-2, 2, n_labels)
-
-
-def _problems(rng, matrix, n):
-    """Pixels mixing non-negative abundances, many exactly zero, plus noise; then one zero pixel,
-    one negative in every channel, and one of noise alone."""
-    k = matrix.shape[1]
-    abundances = np.maximum(rng.normal(0.3, 1.0, size=(k, n)), 0) * 100 / np.linalg.norm(matrix, axis=0)[:, None]
-    pixels = matrix @ abundances + rng.normal(0, 3.0, size=(matrix.shape[0], n))
-    pixels[:, 0] = 0.0
-    pixels[:, 1] = -np.abs(pixels[:, 1])
-    pixels[:, 2] = rng.normal(0, 3.0, matrix.shape[0])
-    return pixels
-
-
-def _objective(matrix, y, a):
-    return float(np.sum((y - matrix @ a) ** 2))
-
-
-def _objective_tolerance(matrix, y, reference, condition):
-    """What rounding allows: cond(M) eps ||y||^2 for the float64 solve (a backward-stable solver's
-    objective is exact to that order), plus moving a float64 optimum to float32 (first order
-    vanishes at the optimum: the square of the change of M a)."""
-    change = np.linalg.norm(matrix, 2) * np.linalg.norm(reference) * np.finfo(np.float32).eps
-    return 10 * condition * EPS * float(y @ y) + 4 * change**2 + 1e-300
-
-
-def _compare_with_scipy(rng, n_problems, labels, dtype, max_log_condition=6.0):
-    """Mismatch counts of the objective (ours above scipy's beyond rounding) per condition decade."""
-    mismatches, counts = {}, {}
-    for _ in range(n_problems):
-        k = int(rng.choice(labels))
-        c = int(rng.integers(max(k, 2), 65))
-        matrix = _matrix_with_condition(rng, c, k, 10 ** rng.uniform(0, max_log_condition) if k > 1 else 1.0)
-        condition = scaled_condition_number(matrix)
-        if condition > CONDITION_LIMIT:
-            continue
-        pixels = _problems(rng, matrix, 8).astype(dtype)
-        ours = Unmixer(matrix).unmix(pixels).astype(np.float64)
-        band = int(np.log10(condition))
-        for i in range(pixels.shape[1]):
-            y = pixels[:, i].astype(np.float64)
-            reference, _ = nnls(matrix, y, maxiter=100 * k)
-            excess = _objective(matrix, y, ours[:, i]) - _objective(matrix, y, reference)
-            counts[band] = counts.get(band, 0) + 1
-            mismatches[band] = mismatches.get(band, 0) + int(
-                excess > _objective_tolerance(matrix, y, reference, condition) or ours[:, i].min() < 0)
-    return mismatches, counts
 
 
 # --- scipy's own NNLS test cases (scipy/optimize/tests/test_nnls.py), each either solved with
@@ -152,27 +96,26 @@ def test_scipy_case_square_exact():
 @pytest.mark.slow
 def test_random_problems_float32_every_label_count_match_scipy():
     # Reference: scipy.optimize.nnls (Lawson & Hanson 1974) on float32 pixels, every K from 1 to
-    # 16, C up to 64, column-scaled condition numbers up to the limit 1e6: no mismatch at all.
-    rng = np.random.default_rng(11)
-    mismatches, counts = _compare_with_scipy(rng, 200, range(1, MAX_LABELS + 1), np.float32)
-    assert sum(counts.values()) > 1300 and set(counts) == {0, 1, 2, 3, 4, 5}
-    assert sum(mismatches.values()) == 0, (mismatches, counts)
+    # 16, C up to 64, column-scaled condition numbers up to the limit 1e6, float32 abundances:
+    # no objective or solution mismatch beyond rounding, no negative abundance.
+    rows = compare(np.random.default_rng(11), 200, 8, range(1, MAX_LABELS + 1), (np.float32,), np.float32)
+    assert sum(r["problems"] for r in rows.values()) > 1300 and set(rows) == {0, 1, 2, 3, 4, 5}
+    assert all(r["objective"] == r["solution"] == r["negative"] == 0 for r in rows.values()), rows
 
 
 @pytest.mark.slow
 def test_random_problems_float64_match_scipy():
     # Reference: scipy.optimize.nnls on float64 pixels (a few label counts, each kernel kind).
-    rng = np.random.default_rng(12)
-    mismatches, counts = _compare_with_scipy(rng, 60, [1, 2, 4, 7, 12, 15], np.float64)
-    assert sum(counts.values()) > 380
-    assert sum(mismatches.values()) == 0, (mismatches, counts)
+    rows = compare(np.random.default_rng(12), 60, 8, [1, 2, 4, 7, 12, 15], (np.float64,), np.float32)
+    assert sum(r["problems"] for r in rows.values()) > 380
+    assert all(r["objective"] == r["solution"] == r["negative"] == 0 for r in rows.values()), rows
 
 
 def test_nnls_equals_ls_where_ls_is_non_negative():
     # The KKT conditions: where the unconstrained solution is feasible it is the NNLS solution.
     rng = np.random.default_rng(4)
     matrix = rng.random((4, 3)) + np.eye(4, 3)
-    pixels = _problems(rng, matrix, 5000).astype(np.float32)
+    pixels = random_pixels(rng, matrix, 5000).astype(np.float32)
     ls = Unmixer(matrix, method="ls").unmix(pixels)
     exact = Unmixer(matrix).unmix(pixels)
     inside = np.all(ls >= 0, axis=0)
@@ -185,8 +128,8 @@ def test_ls_matches_numpy_lstsq():
     # Reference: numpy.linalg.lstsq, up to cond 1e5.
     rng = np.random.default_rng(3)
     for k, condition in ((3, 10.0), (9, 1e3), (16, 1e5)):
-        matrix = _matrix_with_condition(rng, 40, k, condition)
-        pixels = _problems(rng, matrix, 500)
+        matrix = random_matrix(rng, 40, k, condition)
+        pixels = random_pixels(rng, matrix, 500)
         ours = Unmixer(matrix, method="ls").unmix(pixels, dtype=np.float64)
         reference = np.linalg.lstsq(matrix, pixels, rcond=None)[0]
         scale = np.abs(reference).max()
@@ -234,7 +177,7 @@ def test_nan_pixels_give_nan_everywhere(n_labels):
     rng = np.random.default_rng(n_labels)
     n_channels = n_labels + 2
     matrix = np.eye(n_channels, n_labels) + 0.3 * rng.random((n_channels, n_labels))
-    pixels = _problems(rng, matrix, 3000).astype(np.float32)
+    pixels = random_pixels(rng, matrix, 3000).astype(np.float32)
     bad = rng.choice(3000, 60, replace=False)
     pixels[rng.integers(0, n_channels, 60), bad] = rng.choice([np.nan, np.inf, -np.inf], 60)
     good = np.setdiff1d(np.arange(3000), bad)
@@ -253,7 +196,7 @@ def test_many_tiles_threads_and_pixel_types_match_scipy(n_labels):
     # in every pixel type the kernel is compiled for.
     rng = np.random.default_rng(n_labels)
     matrix = np.eye(n_labels + 1, n_labels) + 0.3 * rng.random((n_labels + 1, n_labels))
-    pixels = np.clip(_problems(rng, matrix, 5003) + 50, 0, None)
+    pixels = np.clip(random_pixels(rng, matrix, 5003) + 50, 0, None)
     for dtype in (np.float32, np.float64, np.uint16):
         y = pixels.astype(dtype)
         ours = Unmixer(matrix).unmix(y, background=np.full(n_labels + 1, 50.0), threads=3)
@@ -270,8 +213,8 @@ def test_generic_kernel_matches_generated():
 
     rng = np.random.default_rng(8)
     for k in (3, 8):
-        matrix = _matrix_with_condition(rng, 20, k, 100.0)
-        pixels = _problems(rng, matrix, 4000).astype(np.float32)
+        matrix = random_matrix(rng, 20, k, 100.0)
+        pixels = random_pixels(rng, matrix, 4000).astype(np.float32)
         red = Unmixer(matrix).reduction
         results = []
         for kernel in (KERNELS[k], unmix_any):

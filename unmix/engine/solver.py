@@ -67,8 +67,6 @@ from ..threads import map_in_threads
 
 MAX_LABELS = 16
 METHODS = ("nnls", "ls")
-# Rounding allowance per table row, in units of K machine epsilons (see the module docstring).
-_ROUNDING = 16.0
 
 
 @dataclass(frozen=True)
@@ -103,6 +101,8 @@ def _reduction(matrix_bytes: bytes, shape: tuple) -> Reduction:
 
 def reduce_matrix(matrix: np.ndarray) -> Reduction:
     """QR of the column-scaled matrix and the table of every support's least-squares maps."""
+    from .pixel_solver import ROUNDING
+
     m = np.asarray(matrix, dtype=np.float64)
     n_labels = m.shape[1]
     norms = np.linalg.norm(m, axis=0)
@@ -123,7 +123,7 @@ def reduce_matrix(matrix: np.ndarray) -> Reduction:
         block -= r
         block[np.arange(len(chosen))[:, None], :, columns] = np.linalg.solve(u_s, np.swapaxes(q_s, 1, 2))
         table[chosen] = block
-    tolerance = _ROUNDING * n_labels * np.finfo(np.float64).eps * (np.abs(table).sum(axis=1) + 1.0)
+    tolerance = ROUNDING * n_labels * np.finfo(np.float64).eps * (np.abs(table).sum(axis=1) + 1.0)
     return Reduction(np.ascontiguousarray(q.T), r, 1.0 / norms, table, tolerance)
 
 
@@ -215,6 +215,19 @@ class Unmixer:
         fitted = np.tensordot(self.matrix, np.asarray(abundances, dtype=np.float64), axes=(1, 0))
         misfit = pixels - b.reshape((c,) + (1,) * (pixels.ndim - 1)) - fitted
         return np.sqrt(np.mean(misfit**2, axis=0)).astype(np.float32)
+
+
+def support_groups(abundances: np.ndarray, constrained: bool):
+    """Yield (support bitmask, pixel indices) for the pixels of `abundances` (K, N) by the set of
+    labels above zero (all labels when not `constrained`); pixels with a NaN are left out."""
+    a = np.asarray(abundances)
+    bits = 1 << np.arange(a.shape[0])
+    finite = np.all(np.isfinite(a), axis=0)
+    supports = np.where(finite, ((a > 0) * bits[:, None]).sum(axis=0) if constrained else bits.sum(), -1)
+    order = np.argsort(supports, kind="stable")
+    for group in np.split(order, np.flatnonzero(np.diff(supports[order])) + 1):
+        if group.size and supports[group[0]] >= 0:
+            yield int(supports[group[0]]), group
 
 
 def _kernel(n_labels: int):
