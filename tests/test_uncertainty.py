@@ -187,3 +187,94 @@ def test_spreading_matrix_matches_simulated_single_label_controls():
             assert measured == pytest.approx(spread[j, k], rel=0.03), (j, k)
         # The negative population shows the floor (read noise alone).
         np.testing.assert_allclose(negative.std(axis=1), floor, rtol=0.02)
+
+
+# --- apply: the standard-error output and noise weighting from the matrix file
+
+def _matrix_file(path, noise=True, covariance=True):
+    from unmix.matrix import BleedThroughMatrix
+
+    names = tuple(f"ch{c}" for c in range(6))
+    return BleedThroughMatrix(
+        kind="measured", channels=names, labels=("A", "B", "C"), primary={"A": "ch0", "B": "ch1", "C": "ch2"},
+        matrix=MATRIX, ci95_low=MATRIX - 0.02, ci95_high=MATRIX + 0.02, background=np.full(6, 100.0),
+        background_source="dark",
+        noise_model={**NOISE, "source": "controls"} if noise else None,
+        column_covariance=_column_covariance(0.03) if covariance else None).save(path)
+
+
+def _sample(tmp_path, rng):
+    import tifffile
+
+    truth = rng.uniform(0, 1500, (3, 2, 24, 32))
+    truth[1, :, :12] = 0
+    pixels = _camera(rng, np.einsum("ck,kzyx->czyx", MATRIX, truth)) + 100.0
+    path = tmp_path / "s.ome.tif"
+    tifffile.imwrite(path, np.moveaxis(pixels, 0, 1).astype(np.float32), ome=True, photometric="minisblack",
+                     metadata={"axes": "ZCYX", "Channel": {"Name": [f"ch{c}" for c in range(6)]}})
+    return path, pixels
+
+
+@pytest.mark.parametrize("weights", ["none", "noise"])
+def test_apply_writes_standard_errors_beside_the_abundances(tmp_path, weights, capsys):
+    from unmix.cli import main
+    from unmix.io.images import read_image, read_provenance
+
+    rng = np.random.default_rng(5)
+    matrix_path = _matrix_file(tmp_path / "m.json")
+    source, pixels = _sample(tmp_path, rng)
+    code = main(["apply", "--matrix", str(matrix_path), str(source), "-o", str(tmp_path / "out"), "--uncertainty",
+                 "--weights", weights])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "Spillover spreading" in out
+    abundances = read_image(tmp_path / "out" / "s.unmixed.ome.tif")
+    errors = read_image(tmp_path / "out" / "s.standard-error.ome.tif")
+    assert errors.channel_names == ("A", "B", "C") and errors.data.shape == abundances.data.shape
+    unmixer = Unmixer(MATRIX, noise=NOISE, column_covariance=_column_covariance(0.03), weighted=weights == "noise")
+    for z in range(2):
+        expected, expected_errors = unmixer.solve(pixels[:, z].astype(np.float32), np.full(6, 100.0), errors=True)
+        np.testing.assert_array_equal(abundances.data[:, z], expected)
+        np.testing.assert_array_equal(errors.data[:, z], expected_errors)
+    record = read_provenance(tmp_path / "out" / "s.unmixed.ome.tif")
+    assert record["weights"] == {"requested": weights, "used": weights}
+    assert record["uncertainty"]["noise"] == "noise model (controls)"
+    assert record["uncertainty"]["matrix"] == "column covariance"
+    spread, floor = spreading_matrix(MATRIX, NOISE)
+    np.testing.assert_allclose(record["spreading"]["matrix"], spread)
+
+
+def test_apply_without_noise_model_warns_and_records_what_it_used(tmp_path, capsys):
+    from unmix.cli import main
+    from unmix.io.images import read_provenance
+
+    source, _ = _sample(tmp_path, np.random.default_rng(6))
+    matrix_path = _matrix_file(tmp_path / "m.json", noise=False, covariance=False)
+    code = main(["apply", "--matrix", str(matrix_path), str(source), "-o", str(tmp_path / "out"), "--uncertainty",
+                 "--weights", "noise", "--quiet"])
+    err = capsys.readouterr().err.splitlines()
+    assert code == 0
+    assert any("falls back to equal weights" in line for line in err)
+    assert any("leave out the detector noise" in line for line in err)
+    record = read_provenance(tmp_path / "out" / "s.unmixed.ome.tif")
+    assert record["weights"] == {"requested": "noise", "used": "none", "reason": "the matrix has no noise model"}
+    assert record["uncertainty"]["noise"] is None
+    assert record["uncertainty"]["matrix"] == "95 % intervals, coefficients taken as independent"
+
+
+def test_apply_ome_zarr_standard_errors(tmp_path, capsys):
+    # OME-Zarr in, OME-Zarr out: the standard-error store holds the same values as the TIFF path.
+    from unmix.cli import main
+    from unmix.io.images import Image, read_image, write_ome_zarr
+
+    rng = np.random.default_rng(7)
+    matrix_path = _matrix_file(tmp_path / "m.json")
+    _, pixels = _sample(tmp_path, rng)
+    source = write_ome_zarr(tmp_path / "z.ome.zarr", Image(pixels.astype(np.float32), "CZYX",
+                                                           tuple(f"ch{c}" for c in range(6))))
+    assert main(["apply", "--matrix", str(matrix_path), str(source), "-o", str(tmp_path / "out"), "--uncertainty",
+                 "--quiet"]) == 0
+    errors = read_image(tmp_path / "out" / "z.standard-error.ome.zarr")
+    unmixer = Unmixer(MATRIX, noise=NOISE, column_covariance=_column_covariance(0.03))
+    _, expected = unmixer.solve(pixels[:, 1].astype(np.float32), np.full(6, 100.0), errors=True)
+    np.testing.assert_array_equal(np.asarray(errors.data)[:, 1], expected)

@@ -5,8 +5,6 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-import numpy as np
-
 from ..errors import InputError
 from .args import add_image_options, name_list, numbers, one_line
 
@@ -25,6 +23,10 @@ def add_parsers(sub, common) -> None:
     apply.add_argument("--overwrite", action="store_true", help="replace outputs made from another matrix or input")
     apply.add_argument("--residual", action="store_true", help="also write the per-pixel misfit (RMS residual)")
     apply.add_argument("--saturation", metavar="V[,V...]", help="saturation level, one or one per channel")
+    apply.add_argument("--weights", default="none", metavar="none|noise",
+                       help="noise: weigh channels by the matrix's detector noise model (weighted least squares)")
+    apply.add_argument("--uncertainty", action="store_true",
+                       help="also write each abundance's standard error (<name>.standard-error.ome.tif)")
     add_image_options(apply)
     apply.set_defaults(run=run_apply)
 
@@ -34,7 +36,7 @@ def run_apply(args) -> int:
 
     from ..engine.batch import ApplySettings, apply_matrix
     from ..matrix import load_matrix
-    from ..report.summary import table
+    from ..report.summary import spreading_table, table
 
     matrix = load_matrix(args.matrix)
     inputs = []
@@ -55,20 +57,18 @@ def run_apply(args) -> int:
         raise InputError(f"--method {args.method}: use nnls or ls")
     settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
                              residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
+                             weights=args.weights, uncertainty=args.uncertainty,
                              axes=args.axes, channel_names=name_list(args.channel_names))
-    penalty = matrix.noise_penalty()
+    matrix.check_unmixable(args.matrix)
+    if args.weights not in ("none", "noise"):
+        raise InputError(f"--weights {args.weights}: use none or noise")
     if not args.quiet:
         print(f"Matrix {args.matrix}: {len(matrix.labels)} labels in {len(matrix.channels)} channels; "
               f"condition number {matrix.condition_number():.2f}")
-        print("Noise penalty (variance factor): " + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, penalty)))
-    if matrix.condition_number() > 100 or np.max(penalty) > 10:
-        import warnings
-
-        from ..errors import InputWarning
-
-        warnings.warn(f"{args.matrix}: labels are nearly indistinguishable (condition number "
-                      f"{matrix.condition_number():.0f}); unmixed abundances will be very noisy", InputWarning,
-                      stacklevel=2)
+        print("Noise penalty (variance factor): "
+              + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, matrix.noise_penalty())))
+        if matrix.noise_model is not None:
+            print(spreading_table(matrix))
 
     from tqdm import tqdm
 

@@ -22,7 +22,9 @@ Outputs per input ``<name>`` in OUTDIR (see the command-line contract):
   description;
 - ``<name>.saturation.ome.tif``: uint8 mask, 1 where any input channel is
   saturated;
-- ``<name>.residual.ome.tif`` (optional): root-mean-square misfit per pixel.
+- ``<name>.residual.ome.tif`` (optional): root-mean-square misfit per pixel;
+- ``<name>.standard-error.ome.tif`` (optional): float32 standard error of each
+  abundance, one channel per label (:mod:`unmix.engine.uncertainty`).
 
 A finished output records the matrix checksum and a fingerprint of the
 input in its own metadata and in ``unmix-manifest.json``; a rerun keeps
@@ -48,6 +50,7 @@ from ..errors import InputError
 from ..io.images import Image, check_axes, is_zarr_path, open_images, output_stem, read_images, read_provenance
 from ..matrix import BleedThroughMatrix
 from .solver import Unmixer
+from .uncertainty import error_sources
 
 MANIFEST = "unmix-manifest.json"
 # Faults of the output folder that the user can fix: full, read-only, no permission, over quota.
@@ -74,6 +77,8 @@ class ApplySettings:
     background: str = "matrix"  # "matrix", "estimate" or a path
     overwrite: bool = False
     residual: bool = False
+    weights: str = "none"  # "none" or "noise" (the matrix's noise model; see uncertainty.error_sources)
+    uncertainty: bool = False
     saturation: object = None  # one level, or one per channel; None: detected
     axes: str | None = None
     channel_names: Sequence[str] | None = None
@@ -205,35 +210,38 @@ def _mask_and_peaks(block: np.ndarray, levels) -> tuple[np.ndarray, list]:
 
 
 def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                 background, levels, residual: bool):
+                 background, levels, residual: bool, uncertainty: bool):
     """Read one block from the file and unmix it.
 
     Returns the abundances (K, Y, X), the saturation mask at `levels`, the
-    misfit (or None), the number of NaN pixels and the peak of each channel.
+    misfit (or None), the number of NaN pixels, the peak of each channel and
+    the standard errors (K, Y, X) (or None).
     """
     from ..io.images import read_block
 
     block = read_block(path, series, key, channels=channels, axes=axes, channel_names=channel_names)  # (C, Y, X)
-    abundances = unmixer.unmix(block, background)
+    abundances, errors = unmixer.solve(block, background, errors=uncertainty)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
     misfit = unmixer.residual(block, abundances, background) if residual else None
     mask, peaks = _mask_and_peaks(block, levels)
-    return abundances, mask, misfit, nan, peaks
+    return abundances, mask, misfit, nan, peaks, errors
 
 
 def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
-                           background, levels, residual: bool, destinations: dict):
+                           background, levels, residual: bool, uncertainty: bool, destinations: dict):
     """:func:`_unmix_block`, then store the block in its chunk of each output array (distinct
     chunks: tasks write in parallel); returns the figures only, with the saturated count."""
     import zarr
 
-    abundances, saturated, misfit, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key,
-                                                             unmixer, background, levels, residual)
+    abundances, saturated, misfit, nan, peaks, errors = _unmix_block(
+        path, series, axes, channel_names, channels, key, unmixer, background, levels, residual, uncertainty)
     zarr.open_array(destinations["unmixed"], mode="r+")[key] = abundances
     zarr.open_array(destinations["saturation"], mode="r+")[key] = saturated[None]
     if misfit is not None:
         zarr.open_array(destinations["residual"], mode="r+")[key] = misfit[None]
-    return None, int(np.count_nonzero(saturated)), None, nan, peaks
+    if errors is not None:
+        zarr.open_array(destinations["standard-error"], mode="r+")[key] = errors
+    return None, int(np.count_nonzero(saturated)), None, nan, peaks, None
 
 
 def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels):
@@ -245,7 +253,8 @@ def _mask_block(path: str, series: int, axes, channel_names, channels, key, leve
 
 def _output_names(outdir: Path, stem: str, zarr_output: bool = False) -> dict:
     suffix = ".ome.zarr" if zarr_output else ".ome.tif"
-    return {kind: outdir / f"{stem}.{kind}{suffix}" for kind in ("unmixed", "saturation", "residual")}
+    return {kind: outdir / f"{stem}.{kind}{suffix}" for kind in ("unmixed", "saturation", "residual",
+                                                                  "standard-error")}
 
 
 def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerprint: str, settings: ApplySettings,
@@ -261,6 +270,7 @@ def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerp
                        else str(Path(settings.background).resolve()), "levels": [float(b) for b in background]},
         "noise_penalty": dict(zip(matrix.labels, map(float, matrix.noise_penalty()))),
         "condition_number": matrix.condition_number(),
+        **error_sources(matrix, settings.weights, settings.uncertainty)[2],
     }
 
 
@@ -269,7 +279,8 @@ def _same_run(existing: dict | None, matrix_sha: str, fingerprint: str, settings
         return False
     return (existing.get("matrix", {}).get("sha256") == matrix_sha
             and existing.get("input", {}).get("fingerprint") == fingerprint
-            and existing.get("method") == settings.method)
+            and existing.get("method") == settings.method
+            and existing.get("weights", {}).get("requested", "none") == settings.weights)
 
 
 def _planes_writer(blocks, n_labels: int):
@@ -344,7 +355,7 @@ def _task_source(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settin
 
 def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, unmixer: Unmixer,
                      settings: ApplySettings, compute, tally: _SeriesTally, destinations: dict | None = None):
-    """Yield (key, abundances, saturation mask, misfit or None) per block of a series, in order.
+    """Yield (key, abundances, saturation mask, misfit or None, errors or None) per block of a series.
 
     NaN and saturated pixel counts and the channel peaks are added to `tally`.
     With `destinations` (kind -> path of an OME-Zarr array), each task stores
@@ -352,11 +363,12 @@ def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, un
     """
     source = _task_source(job, path, matrix, settings)
     task, extra = (_unmix_block, ()) if destinations is None else (_unmix_block_into_zarr, (destinations,))
-    for key, (abundances, saturated, misfit, nan, peaks) in _in_batches(
+    for key, (abundances, saturated, misfit, nan, peaks, errors) in _in_batches(
             list(_block_keys(job.image)), settings.batch_blocks, task,
-            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual, *extra), compute):
+            lambda key: (*source, key, unmixer, job.background, job.levels, settings.residual, settings.uncertainty,
+                         *extra), compute):
         tally.add(nan, saturated if isinstance(saturated, int) else int(np.count_nonzero(saturated)), peaks)
-        yield key, abundances, saturated, misfit
+        yield key, abundances, saturated, misfit, errors
 
 
 def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settings: ApplySettings,
@@ -429,11 +441,13 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
         return {f"PhysicalSize{axis}": float(size) for axis, size in image.pixel_size.items()}
 
     def blocks(job: _SeriesJob, maps: dict, tally: _SeriesTally):
-        for _, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings, compute,
-                                                                 tally):
+        for _, abundances, saturated, misfit, errors in _computed_blocks(job, path, matrix, unmixer, settings,
+                                                                         compute, tally):
             maps["saturation"].append(saturated)
             if misfit is not None:
                 maps["residual"].append(misfit)
+            for plane in () if errors is None else errors:
+                maps["standard-error"].append(plane)
             yield abundances
 
     def map_planes(kind: str, job: _SeriesJob, maps: dict, tally: _SeriesTally, levels: np.ndarray):
@@ -441,9 +455,12 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
             return (mask for _, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally))
         return maps[kind].planes(job.image.data.shape[-2:])
 
-    kinds = {"saturation": (np.uint8, "saturated"), "residual": (np.float32, "residual_rms")}
+    kinds = {"saturation": (np.uint8, ["saturated"]), "residual": (np.float32, ["residual_rms"]),
+             "standard-error": (np.float32, list(matrix.labels))}
     if not settings.residual:
         del kinds["residual"]
+    if not settings.uncertainty:
+        del kinds["standard-error"]
     with contextlib.ExitStack() as scratch:
         maps_per_series = []
         for _ in jobs:
@@ -465,11 +482,11 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
                                            "Description": json.dumps(job.provenance, sort_keys=True),
                                            **physical(job.image)})
         levels = [_final_levels(job, tally.peaks, settings) for job, tally in zip(jobs, tallies)]
-        for kind, (_, channel) in kinds.items():
+        for kind, (_, channel_names) in kinds.items():
             with atomic_output(names[kind]) as tmp:
                 with tifffile.TiffWriter(tmp, ome=True, bigtiff=total_bytes > 2**31) as writer:
                     for job, maps, tally, series_levels in zip(jobs, maps_per_series, tallies, levels):
-                        axes, shape = layout(job.image, 1)
+                        axes, shape = layout(job.image, len(channel_names))
                         description = {"of": names["unmixed"].name}
                         if kind == "saturation":
                             description["levels"] = [float(v) for v in series_levels]
@@ -478,7 +495,7 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
                                      # Masks are mostly zeros: the fastest zlib level packs them well.
                                      compression="zlib" if kind == "saturation" else None,
                                      compressionargs={"level": 1} if kind == "saturation" else None,
-                                     metadata={"axes": axes, "Channel": {"Name": [channel]},
+                                     metadata={"axes": axes, "Channel": {"Name": channel_names},
                                                "Description": json.dumps(description), **physical(job.image)})
     return _totals(tallies)
 
@@ -499,9 +516,11 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
     from ome_zarr.writer import write_multiscales_metadata
 
     tallies = []
-    kinds = ["unmixed", "saturation"] + (["residual"] if settings.residual else [])
-    channels = {"unmixed": list(matrix.labels), "saturation": ["saturated"], "residual": ["residual_rms"]}
-    dtypes = {"unmixed": np.float32, "saturation": np.uint8, "residual": np.float32}
+    kinds = (["unmixed", "saturation"] + (["residual"] if settings.residual else [])
+             + (["standard-error"] if settings.uncertainty else []))
+    channels = {"unmixed": list(matrix.labels), "saturation": ["saturated"], "residual": ["residual_rms"],
+                "standard-error": list(matrix.labels)}
+    dtypes = {"unmixed": np.float32, "saturation": np.uint8, "residual": np.float32, "standard-error": np.float32}
     with contextlib.ExitStack() as stack:
         folders = {kind: stack.enter_context(atomic_output(names[kind])) for kind in kinds}
         roots = {kind: zarr.open_group(str(folder), mode="w") for kind, folder in folders.items()}
@@ -529,14 +548,16 @@ def _write_zarr_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmi
             destinations = None
             if writes_in_tasks:
                 destinations = {kind: str(folders[kind] / ("" if len(jobs) == 1 else str(i)) / "0") for kind in kinds}
-            for key, abundances, saturated, misfit in _computed_blocks(job, path, matrix, unmixer, settings,
-                                                                       compute, tally, destinations):
+            for key, abundances, saturated, misfit, errors in _computed_blocks(job, path, matrix, unmixer, settings,
+                                                                               compute, tally, destinations):
                 if destinations is not None:
                     continue  # the task stored the block
                 arrays["unmixed"][key] = abundances
                 arrays["saturation"][key] = saturated[None]
                 if misfit is not None:
                     arrays["residual"][key] = misfit[None]
+                if errors is not None:
+                    arrays["standard-error"][key] = errors
             levels = _final_levels(job, tally.peaks, settings)
             if np.any(levels < job.levels):
                 for key, mask in _recomputed_masks(job, path, matrix, settings, levels, compute, tally):
@@ -602,10 +623,10 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
             check_axes(settings.axes, "--axes")
         except ValueError as exc:
             raise InputError(str(exc)) from None
-    try:
-        unmixer = Unmixer(matrix.matrix, method=settings.method)
-    except ValueError as exc:
-        raise InputError(f"matrix: {exc}; measure or describe more channels, or fewer labels") from None
+    matrix.check_unmixable(warn=False)
+    noise, covariance, _ = error_sources(matrix, settings.weights, settings.uncertainty, warn=True)
+    unmixer = Unmixer(matrix.matrix, method=settings.method, labels=matrix.labels, noise=noise,
+                      column_covariance=covariance, weighted=settings.weights == "noise" and noise is not None)
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
     resolved_inputs = {Path(p).resolve() for p, _ in plan}
@@ -725,7 +746,8 @@ def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, na
         except Exception:  # noqa: BLE001 - an unreadable output is not ours to trust
             existing = None
         same = _same_run(existing, matrix_sha, fingerprint, settings)
-        complete = names["saturation"].exists() and (names["residual"].exists() or not settings.residual)
+        complete = (names["saturation"].exists() and (names["residual"].exists() or not settings.residual)
+                    and (names["standard-error"].exists() or not settings.uncertainty))
         if same and complete:
             return FileResult(str(path), str(names["unmixed"]), "kept", "already done with this matrix")
         if not same and not settings.overwrite:

@@ -139,6 +139,16 @@ class Unmixer:
     method : {"nnls", "ls"}
     labels : sequence of str, optional
         Label names, to name them when the matrix is refused.
+    noise : dict, optional
+        ``{"read_variance": (C,), "gain": (C,)}``, the detector's photon-transfer
+        line (variance = read_variance + gain x signal, input units): for
+        `weighted` and for the noise part of the standard errors.
+    column_covariance : ndarray (K, C, C), optional
+        Covariance of each label's column of the matrix: the matrix part of
+        the standard errors.
+    weighted : bool
+        :meth:`solve` weighs each channel of each pixel by ``1 / variance``
+        (:mod:`unmix.engine.weighting`); needs `noise`.
 
     Raises
     ------
@@ -149,6 +159,9 @@ class Unmixer:
     matrix: np.ndarray
     method: str = "nnls"
     labels: tuple | None = None
+    noise: dict | None = None
+    column_covariance: np.ndarray | None = None
+    weighted: bool = False
 
     def __post_init__(self):
         m = np.asarray(self.matrix, dtype=np.float64)
@@ -162,10 +175,19 @@ class Unmixer:
             raise ValueError(f"method must be one of {METHODS}")
         check_unmixable(m, self.labels, warn=False)
         object.__setattr__(self, "matrix", m)
+        if self.noise is not None:
+            from .weighting import noise_arrays
+
+            noise_arrays(self.noise, m.shape[0])
+        elif self.weighted:
+            raise ValueError("noise weighting needs a noise model (read variance and gain per channel)")
+        if self.column_covariance is not None and np.shape(self.column_covariance) != (m.shape[1],) + m.shape[:1] * 2:
+            raise ValueError(f"column covariance must be {m.shape[1]} matrices of {m.shape[0]} x {m.shape[0]}")
 
     def __getstate__(self):
         # Tasks sent to other processes carry the matrix only; the table is rebuilt there.
-        return {"matrix": self.matrix, "method": self.method, "labels": self.labels}
+        return {key: getattr(self, key) for key in ("matrix", "method", "labels", "noise", "column_covariance",
+                                                    "weighted")}
 
     def __setstate__(self, state):
         for key, value in state.items():
@@ -206,6 +228,22 @@ class Unmixer:
             (y, red.qt, offset, red.scale, red.table, red.tolerance, self.method == "nnls", abundances,
              int(lo), int(hi)) for lo, hi in zip(bounds[:-1], bounds[1:]) if hi > lo])
         return abundances.reshape((self.n_labels,) + shape)
+
+    def solve(self, pixels: np.ndarray, background=None, threads: int = 1, errors: bool = False):
+        """Abundances (K, ...) float32 as configured (noise-weighted when `weighted`) and, with
+        `errors`, their standard errors (K, ...) float32 (:mod:`unmix.engine.uncertainty`), else None."""
+        if self.weighted:
+            from .weighting import unmix_weighted
+
+            abundances, standard_errors = unmix_weighted(self, pixels, self.noise, background, threads,
+                                                         self.column_covariance)
+            return abundances, standard_errors if errors else None
+        abundances = self.unmix(pixels, background, threads)
+        if not errors:
+            return abundances, None
+        from .uncertainty import standard_errors
+
+        return abundances, standard_errors(self, abundances, self.noise, self.column_covariance)
 
     def residual(self, pixels: np.ndarray, abundances: np.ndarray, background=None) -> np.ndarray:
         """Root-mean-square misfit per pixel, ``||y - b - M a|| / sqrt(C)``, float32."""

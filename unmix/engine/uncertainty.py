@@ -31,6 +31,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..errors import InputError, InputWarning
+from ..matrix import BleedThroughMatrix
 from .solver import Unmixer, support_groups
 from .weighting import noise_arrays
 
@@ -89,3 +91,59 @@ def estimator_rows(unmixer: Unmixer, support: int) -> np.ndarray:
     n_labels = unmixer.n_labels
     masks = support | (1 << np.arange(n_labels))
     return red.scale[:, None] * np.einsum("jm,mc->jc", red.table[masks, :, np.arange(n_labels)], red.qt)
+
+
+def error_sources(matrix: BleedThroughMatrix, weights: str = "none", uncertainty: bool = False, warn: bool = False,
+                  where: str = "matrix"):
+    """What noise weighting and standard errors can use from a matrix file, and a record of it.
+
+    Returns ``(noise, column_covariance, record)``: the noise model (None if
+    the matrix has none), the column covariance for the errors (the matrix's;
+    for a matrix with 95 % intervals but no covariance, independent
+    coefficients of standard deviation half-width / 1.96; None without
+    either), and for the outputs' metadata what was asked for and what was
+    used, with the spillover-spreading figures when there is a noise model
+    (:mod:`unmix.engine.spreading`). Weights asked for without a noise model
+    fall back to equal weights, and errors without one of the two sources
+    use the other, each with a warning (`warn`); errors without either are
+    an InputError.
+    """
+    import warnings
+
+    from .spreading import spreading_matrix
+
+    if weights not in ("none", "noise"):
+        raise InputError(f"--weights {weights}: use none or noise")
+    noise = matrix.noise_model
+    record = {"weights": {"requested": weights, "used": weights if noise is not None else "none"}}
+    if weights == "noise" and noise is None:
+        record["weights"]["reason"] = "the matrix has no noise model"
+        if warn:
+            warnings.warn(f"{where}: has no noise model (predicted, or measured before noise models were stored); "
+                          "--weights noise falls back to equal weights: re-measure the matrix to weight by noise",
+                          InputWarning, stacklevel=2)
+    covariance, covariance_source = matrix.column_covariance, "column covariance"
+    if covariance is None and matrix.ci95_low is not None:
+        sd = (matrix.ci95_high - matrix.ci95_low) / (2 * 1.96)
+        covariance = np.stack([np.diag(sd[:, k] ** 2) for k in range(len(matrix.labels))])
+        covariance_source = "95 % intervals, coefficients taken as independent"
+    if uncertainty:
+        if noise is None and covariance is None:
+            raise InputError(f"{where}: --uncertainty needs the matrix's noise model or its intervals, and this "
+                             "matrix has neither; use a measured matrix (re-measure it with this version)")
+        missing = "noise model" if noise is None else "intervals" if covariance is None else None
+        if missing and warn:
+            warnings.warn(f"{where}: has no {missing}; the standard errors leave out the "
+                          f"{'detector noise' if noise is None else 'uncertainty of the matrix'} (recorded in the "
+                          "output's metadata)", InputWarning, stacklevel=2)
+        record["uncertainty"] = {
+            "output": "standard error of each abundance (first-order propagation on the active support)",
+            "noise": None if noise is None else f"noise model ({noise['source']})",
+            "matrix": None if covariance is None else covariance_source}
+    if noise is not None:
+        spread, floor = spreading_matrix(matrix.matrix, noise)
+        record["spreading"] = {
+            "labels": list(matrix.labels), "floor": [float(f) for f in floor], "matrix": spread.tolist(),
+            "meaning": "standard deviation of label k = sqrt(floor[k]^2 + sum_j matrix[j][k]^2 x abundance j) "
+                       "(least squares)"}
+    return noise, covariance, record
