@@ -205,25 +205,23 @@ def test_many_tiles_threads_and_pixel_types_match_scipy(n_labels):
             np.testing.assert_allclose(ours[:, i], reference, atol=1e-4 * np.abs(y[:, i]).max())
 
 
-def test_generic_kernel_matches_generated():
-    # The generic kernel (label counts above the generated ones) and a generated kernel are two
-    # implementations of one method: same abundances to rounding.
-    from unmix.engine.pixel_solver import unmix_any
-    from unmix.engine.unrolled import KERNELS
+def test_generated_kernels_match_the_per_pixel_solver():
+    # The generated kernels write out, with scalars, the method of pixel_solver.solve_reduced
+    # (array by array): two implementations of one method, same abundances to rounding.
+    from unmix.engine.pixel_solver import solve_reduced
 
     rng = np.random.default_rng(8)
-    for k in (3, 8):
+    for k in (3, 6, 11):
         matrix = random_matrix(rng, 20, k, 100.0)
-        pixels = random_pixels(rng, matrix, 4000).astype(np.float32)
-        red = Unmixer(matrix).reduction
-        results = []
-        for kernel in (KERNELS[k], unmix_any):
-            out = np.empty((k, pixels.shape[1]), np.float32)
-            assert kernel(pixels, red.qt, np.zeros(k), red.scale, red.table, red.tolerance, True, out, 0,
-                          pixels.shape[1]) == 0
-            results.append(out)
-        scale = np.abs(results[0]).max()
-        np.testing.assert_allclose(results[0], results[1], rtol=0, atol=1e-5 * scale)
+        pixels = random_pixels(rng, matrix, 1500)
+        unmixer = Unmixer(matrix)
+        red = unmixer.reduction
+        ours = unmixer.unmix(pixels, dtype=np.float64)
+        x, scratch = np.empty(k), [np.empty(k) for _ in range(3)]
+        for i in range(pixels.shape[1]):
+            assert solve_reduced(red.qt @ pixels[:, i], red.table, red.tolerance, np.empty((0, 0)),
+                                 np.empty((3, 0, 0)), x, *scratch) > 0
+            np.testing.assert_allclose(ours[:, i], red.scale * x, rtol=0, atol=1e-9 * np.abs(ours[:, i]).max())
 
 
 # --- matrices that cannot be unmixed

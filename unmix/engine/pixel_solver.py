@@ -1,6 +1,10 @@
-"""Compiled exact NNLS per pixel on a precomputed support table (numba); see :mod:`unmix.engine.solver`.
+"""Compiled exact NNLS of one pixel's reduced problem (numba); see :mod:`unmix.engine.solver`.
 
-Every function here works in the reduced problem of the solver: ``d``
+The generated kernels (:mod:`unmix.engine.unrolled`) write these steps out
+with scalars for speed; the functions here serve the noise-weighted solver
+(:mod:`unmix.engine.weighted_solver`), whose pixels each have their own
+factorisation, and keep the shared constants. Every function here works in
+the reduced problem of the solver: ``d``
 (K values per pixel, ``Q^T (y - b)``), and the support table ``T[S]`` whose
 row ``j`` gives, as a linear function of ``d``, the abundance of label ``j``
 when ``j`` is in the support ``S`` and the gradient of the objective for
@@ -14,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-TILE = 1024
+TILE = 256
 # Table lookups allowed per pixel before the active-set iterations are cut short.
 # Never reached in the randomised comparison with scipy (tests/benchmarks/compare_nnls.py).
 LOOKUPS_PER_LABEL = 8
@@ -194,95 +198,3 @@ def solve_reduced(d, table, tolerance, r, work, x, v, tol, var):
             return lookups
         support |= 1 << entered
     return -lookups
-
-
-@njit(cache=True, nogil=True, fastmath={"contract"})
-def unmix_any(y, qt, offset, scale, table, tolerance, constrained, out, start, stop):
-    """Abundances of pixels ``start:stop`` of `y` (C, N) into `out` (K, N), for any label count.
-
-    ``d = Q^T y - offset`` and the unconstrained solution ``T[full] d`` are
-    formed per tile of pixels in float64 (loops vectorised over the pixels);
-    NNLS then finishes the pixels where that solution is not feasible one by
-    one (:func:`solve_reduced`). The abundances are ``scale * x``. A pixel
-    with a non-finite value in any channel gives NaN in every label. Returns
-    the number of pixels whose iterations were cut short.
-    """
-    n_channels = y.shape[0]
-    n_labels = qt.shape[0]
-    full = (1 << n_labels) - 1
-    # d at [j * TILE + i], the solution at [(K + j) * TILE + i].
-    tile = np.empty(2 * n_labels * TILE)
-    d = np.empty(n_labels)
-    x = np.empty(n_labels)
-    v = np.empty(n_labels)
-    tol = np.empty(n_labels)
-    var = np.empty(n_labels)
-    no_factor = np.empty((0, 0))
-    work = np.empty((3, 0, 0))
-    unfinished = 0
-    for t0 in range(start, stop, TILE):
-        n = min(TILE, stop - t0)
-        for j in range(n_labels):
-            part = tile[j * TILE:j * TILE + n]
-            o = offset[j]
-            for i in range(n):
-                part[i] = -o
-        c = 0
-        while c < n_channels:
-            if c + 4 <= n_channels:
-                row0 = y[c, t0:t0 + n]
-                row1 = y[c + 1, t0:t0 + n]
-                row2 = y[c + 2, t0:t0 + n]
-                row3 = y[c + 3, t0:t0 + n]
-                for j in range(n_labels):
-                    part = tile[j * TILE:j * TILE + n]
-                    q0 = qt[j, c]
-                    q1 = qt[j, c + 1]
-                    q2 = qt[j, c + 2]
-                    q3 = qt[j, c + 3]
-                    for i in range(n):
-                        part[i] += (q0 * np.float64(row0[i]) + q1 * np.float64(row1[i])
-                                    + q2 * np.float64(row2[i]) + q3 * np.float64(row3[i]))
-                c += 4
-            else:
-                row0 = y[c, t0:t0 + n]
-                for j in range(n_labels):
-                    part = tile[j * TILE:j * TILE + n]
-                    q0 = qt[j, c]
-                    for i in range(n):
-                        part[i] += q0 * np.float64(row0[i])
-                c += 1
-        for j in range(n_labels):
-            sol = tile[(n_labels + j) * TILE:(n_labels + j) * TILE + n]
-            for i in range(n):
-                sol[i] = 0.0
-            for m in range(n_labels):
-                part = tile[m * TILE:m * TILE + n]
-                t = table[full, m, j]
-                for i in range(n):
-                    sol[i] += t * part[i]
-        for i in range(n):
-            finite = True
-            dmax = 0.0
-            feasible = True
-            for j in range(n_labels):
-                d[j] = tile[j * TILE + i]
-                finite &= np.isfinite(d[j])
-                dmax = max(dmax, abs(d[j]))
-            for j in range(n_labels):
-                feasible &= tile[(n_labels + j) * TILE + i] >= -tolerance[full, j] * dmax
-            if not finite:
-                for j in range(n_labels):
-                    out[j, t0 + i] = np.nan
-            elif not constrained:
-                for j in range(n_labels):
-                    out[j, t0 + i] = scale[j] * tile[(n_labels + j) * TILE + i]
-            elif feasible:
-                for j in range(n_labels):
-                    out[j, t0 + i] = scale[j] * max(tile[(n_labels + j) * TILE + i], 0.0)
-            else:
-                if solve_reduced(d, table, tolerance, no_factor, work, x, v, tol, var) < 0:
-                    unfinished += 1
-                for j in range(n_labels):
-                    out[j, t0 + i] = scale[j] * x[j]
-    return unfinished

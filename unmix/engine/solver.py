@@ -32,18 +32,24 @@ and kept per process for the last few matrices.
 
 Solving the pixels
 ------------------
-With K <= 4 labels the generated kernels of :mod:`unmix.engine.unrolled`
-(:mod:`unmix.engine.codegen`) try every support in a loop vectorised over
-the pixels, keeping the first that satisfies the KKT conditions; with more
-labels :func:`unmix.engine.pixel_solver.unmix_any` runs Lawson-Hanson
-active-set iterations per pixel, each solve one table lookup (the shared
-cross products of Bro & de Jong's FNNLS), warm-started from the positive
-part of the unconstrained solution. Both form ``d`` in float64 per tile of
-1024 pixels, vectorised over the pixels, and release the GIL so that
-threads run them in parallel. Measured ratios are in
+The kernels of :mod:`unmix.engine.unrolled` (one per label count, written by
+:mod:`unmix.engine.codegen`, compiled with numba, releasing the GIL so that
+threads run them in parallel) work on tiles of 256 pixels. They form ``d``
+in float64 and the unconstrained solution ``T[full] d`` in loops vectorised
+over the pixels; least squares stops there. For NNLS, with K <= 4 labels
+the same loop tries every smaller support by decreasing size, each pixel
+keeping the first that satisfies the KKT conditions; with more labels the
+pixels whose unconstrained solution is not feasible get Lawson-Hanson
+active-set iterations, each solve one table lookup (the shared cross
+products of Bro & de Jong's FNNLS), warm-started from the positive part of
+the unconstrained solution (:func:`unmix.engine.pixel_solver.solve_reduced`
+is the same method, array by array). Measured ratios are in
 ``tests/benchmarks/bench_solve.py``; the agreement with
 ``scipy.optimize.nnls`` per condition band in
-``tests/benchmarks/compare_nnls.py``.
+``tests/benchmarks/compare_nnls.py``. When the pixels' supports vary at
+random (the benchmark's worst case) a table larger than the processor's
+cache makes the lookups wait for memory (K = 12); the few supports of a real
+image stay in cache.
 
 References
 ----------
@@ -271,8 +277,4 @@ def support_groups(abundances: np.ndarray, constrained: bool):
 def _kernel(n_labels: int):
     from .unrolled import KERNELS
 
-    if n_labels in KERNELS:
-        return KERNELS[n_labels]
-    from .pixel_solver import unmix_any
-
-    return unmix_any
+    return KERNELS[n_labels]
