@@ -3,6 +3,8 @@ and simulations with known truth."""
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 from scipy.optimize import nnls
@@ -278,3 +280,23 @@ def test_apply_ome_zarr_standard_errors(tmp_path, capsys):
     unmixer = Unmixer(MATRIX, noise=NOISE, column_covariance=_column_covariance(0.03))
     _, expected = unmixer.solve(pixels[:, 1].astype(np.float32), np.full(6, 100.0), errors=True)
     np.testing.assert_array_equal(np.asarray(errors.data)[:, 1], expected)
+
+
+def test_apply_uncertainty_without_intervals_gives_noise_only_errors(tmp_path, capsys):
+    from unmix.cli import main
+    from unmix.io.images import read_image, read_provenance
+    from unmix.matrix import load_matrix
+
+    source, pixels = _sample(tmp_path, np.random.default_rng(8))
+    matrix = load_matrix(_matrix_file(tmp_path / "full.json", covariance=False)).to_dict()
+    matrix.update(ci95_low=None, ci95_high=None)
+    path = tmp_path / "m.json"
+    path.write_text(json.dumps(matrix))
+    code = main(["apply", "--matrix", str(path), str(source), "-o", str(tmp_path / "out"), "--uncertainty", "--quiet"])
+    err = capsys.readouterr().err.splitlines()
+    assert code == 0 and any("has no intervals" in line and "uncertainty of the matrix" in line for line in err)
+    record = read_provenance(tmp_path / "out" / "s.unmixed.ome.tif")
+    assert record["uncertainty"]["matrix"] is None and record["uncertainty"]["noise"] == "noise model (controls)"
+    errors = read_image(tmp_path / "out" / "s.standard-error.ome.tif").data
+    _, expected = Unmixer(MATRIX, noise=NOISE).solve(pixels[:, 0].astype(np.float32), np.full(6, 100.0), errors=True)
+    np.testing.assert_array_equal(errors[:, 0], expected)

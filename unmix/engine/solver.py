@@ -28,7 +28,7 @@ applied to this pixel, ``tolerance[S, j] * max|d|`` (``16 K eps`` times the
 row's absolute sum plus one): a tolerance scaled by the problem's own
 magnitudes. The table takes ``2^K K^2`` doubles: 4.7 MB at K = 12, 134 MB at
 K = 16, built in 0.08 s and about 1 s; it is shared by all pixels and threads
-and kept per process for the last few matrices.
+and kept per process for the last two matrices.
 
 Solving the pixels
 ------------------
@@ -100,7 +100,7 @@ class Reduction:
     tolerance: np.ndarray
 
 
-@lru_cache(maxsize=4)
+@lru_cache(maxsize=2)
 def _reduction(matrix_bytes: bytes, shape: tuple) -> Reduction:
     return reduce_matrix(np.frombuffer(matrix_bytes).reshape(shape))
 
