@@ -170,6 +170,21 @@ def _rank_deficient(tmp_path):
     return path
 
 
+def _collinear(tmp_path):
+    # Labels B and C differ by 1e-7 in one coefficient: column-scaled condition number about 1e7.
+    values = np.array([[1.0, 0.2, 0.2], [0.2, 1.0, 1.0], [0.1, 0.3, 0.3 + 1e-7]])
+    return BleedThroughMatrix(kind="measured", channels=("blue450", "green525", "orange600"), labels=("A", "B", "C"),
+                              primary={"A": "blue450", "B": "green525", "C": "green525"}, matrix=values,
+                              background=np.zeros(3), background_source="dark").save(tmp_path / "collinear.json")
+
+
+def _too_many_labels(tmp_path):
+    values = np.array([[1.0, 0.3, 1.0], [0.2, 1.0, 0.5]])
+    return BleedThroughMatrix(kind="measured", channels=("blue450", "green525"), labels=("A", "B", "C"),
+                              primary={"A": "blue450", "B": "green525", "C": "blue450"}, matrix=values,
+                              background=np.zeros(2), background_source="dark").save(tmp_path / "three.json")
+
+
 APPLY_BAD_INPUT = {
     "missing input": (lambda t, d, m: ["--matrix", m, t / "none.tif", "-o", t / "out"], "none.tif"),
     "glob matches nothing": (lambda t, d, m: ["--matrix", m, str(t / "*.nothing"), "-o", t / "out"], "matches no file"),
@@ -186,6 +201,14 @@ APPLY_BAD_INPUT = {
                                      "--background"),
     "rank-deficient matrix": (lambda t, d, m: ["--matrix", _rank_deficient(t), d["sample"], "-o", t / "out"],
                               "rank-deficient"),
+    "matrix above the condition limit": (lambda t, d, m: ["--matrix", _collinear(t), d["sample"], "-o", t / "out"],
+                                         "labels 'B', 'C' are nearly collinear"),
+    "more labels than channels": (lambda t, d, m: ["--matrix", _too_many_labels(t), d["sample"], "-o", t / "out"],
+                                  "3 labels but only 2 channels"),
+    "uncertainty without noise model or intervals": (
+        lambda t, d, m: ["--matrix", _predicted(t), d["sample"], "-o", t / "out", "--background", "estimate",
+                         "--uncertainty"], "--uncertainty needs"),
+    "bad weights": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--weights", "magic"], "--weights"),
     "bad method": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--method", "magic"], "--method"),
     "missing background file": (lambda t, d, m: ["--matrix", m, d["sample"], "-o", t / "out", "--background",
                                                  t / "dark.tif"], "dark.tif"),

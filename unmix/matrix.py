@@ -38,6 +38,13 @@ NOISE_SOURCES = ("controls", "controls and dark frame", "image")
 KINDS = ("measured", "predicted")
 BACKGROUND_SOURCES = ("unstained", "dark", "estimated")
 _PRIMARY_TOLERANCE = 1e-6
+# Unmixing refuses a matrix whose labels are this nearly collinear (condition number of the
+# column-scaled matrix) and warns above CONDITION_WARNING. At cond 1e6 a label's noise can be
+# amplified up to a million-fold and float32 abundances keep only about one significant digit
+# of the least-squares answer; from about 1e3 on the noise penalty already dominates a result.
+# (common practice: the usual rule that log10(cond) digits of precision are lost)
+CONDITION_LIMIT = 1e6
+CONDITION_WARNING = 1e3
 
 
 @dataclass(frozen=True)
@@ -135,6 +142,10 @@ class BleedThroughMatrix:
             draws[:, self.channels.index(self.primary[label]), k] = 1.0
         return draws
 
+    def check_unmixable(self, where: str = "matrix", warn: bool = True) -> float:
+        """:func:`check_unmixable` with this matrix's label names."""
+        return check_unmixable(self.matrix, self.labels, where, warn)
+
     def column(self, label: str) -> np.ndarray:
         return self.matrix[:, self.labels.index(label)]
 
@@ -213,6 +224,69 @@ class BleedThroughMatrix:
             noise_model=_noise_model(data.get("noise_model")), column_covariance=array("column_covariance"),
             qc=dict(data.get("qc") or {}), provenance=dict(data.get("provenance") or {}),
         )
+
+
+def scaled_condition_number(matrix) -> float:
+    """Condition number of M with every column scaled to unit length (inf when rank-deficient).
+
+    A label's brightness scale does not make it harder to tell apart from the
+    others; the scaled number measures only how nearly collinear the columns
+    are, and is what the solver works with (:mod:`unmix.engine.solver`). For a
+    bleed-through matrix (each column 1 at its primary channel) it is close to
+    :meth:`BleedThroughMatrix.condition_number`.
+    """
+    m = np.asarray(matrix, dtype=float)
+    norms = np.linalg.norm(m, axis=0)
+    if m.shape[0] < m.shape[1] or not np.all(norms > 0):
+        return float("inf")
+    singular = np.linalg.svd(m / norms, compute_uv=False)
+    return float(singular[0] / singular[-1]) if singular[-1] > 0 else float("inf")
+
+
+def check_unmixable(matrix, labels=None, where: str = "matrix", warn: bool = True) -> float:
+    """Refuse a matrix that per-pixel unmixing cannot use; return its scaled condition number.
+
+    Raises InputError, naming the labels concerned, when there are more
+    labels than channels, a label's column is zero, or the labels are so
+    nearly collinear that the scaled condition number exceeds
+    ``CONDITION_LIMIT`` (1e6); the nearly collinear labels are those with the
+    largest weights in the right singular vector of the smallest singular
+    value. Above ``CONDITION_WARNING`` (1e3) it warns (InputWarning) when
+    `warn` is true.
+    """
+    import warnings
+
+    from .errors import InputWarning
+
+    m = np.asarray(matrix, dtype=float)
+    n_channels, n_labels = m.shape
+    names = [repr(str(label)) for label in labels] if labels is not None else [f"column {k}" for k in range(n_labels)]
+    if n_channels < n_labels:
+        raise InputError(f"{where}: {n_labels} labels but only {n_channels} channels; unmixing needs at least as "
+                         "many channels as labels: image more channels or unmix fewer labels")
+    norms = np.linalg.norm(m, axis=0)
+    if not np.all(norms > 0):
+        raise InputError(f"{where}: label {names[int(np.argmin(norms))]} is zero in every channel; fix the matrix")
+    cond = scaled_condition_number(m)
+    if cond > CONDITION_LIMIT:
+        involved = _collinear(m / norms, names)
+        what = (f"rank-deficient: labels {', '.join(involved)} are collinear" if not np.isfinite(cond) or cond > 1e15
+                else f"labels {', '.join(involved)} are nearly collinear (condition number {cond:.2g}, above the "
+                     f"limit {CONDITION_LIMIT:.0e})")
+        raise InputError(f"{where}: {what}; they cannot be told apart: merge or drop one of them, or add channels "
+                         "that separate them")
+    if warn and cond > CONDITION_WARNING:
+        involved = _collinear(m / norms, names)
+        warnings.warn(f"{where}: labels {', '.join(involved)} are hard to tell apart (condition number {cond:.0f}, "
+                      f"above {CONDITION_WARNING:.0f}); their abundances will be very noisy", InputWarning,
+                      stacklevel=2)
+    return cond
+
+
+def _collinear(scaled: np.ndarray, names: list) -> list:
+    """Names of the labels that weigh most in the nearest linear dependence of the columns."""
+    direction = np.abs(np.linalg.svd(scaled)[2][-1])
+    return [name for name, weight in zip(names, direction) if weight >= 0.25 * direction.max()]
 
 
 def _is_grid(value, shape) -> bool:

@@ -6,8 +6,6 @@ import os
 import sys
 from pathlib import Path
 
-import numpy as np
-
 from ..errors import InputError
 from .args import (add_image_options, add_registration_option, add_settings_option, check_output_folder,
                    memory_size, name_list, numbers, one_line, registration_from)
@@ -32,6 +30,10 @@ def add_parsers(sub, common) -> None:
                             "together, and planes too large for it are cut into strips of rows")
     add_settings_option(apply)
     add_registration_option(apply)
+    apply.add_argument("--weights", default="none", metavar="none|noise",
+                       help="noise: weigh channels by the matrix's detector noise model (weighted least squares)")
+    apply.add_argument("--uncertainty", action="store_true",
+                       help="also write each abundance's standard error (<name>.standard-error.ome.tif)")
     add_image_options(apply)
     apply.set_defaults(run=run_apply)
 
@@ -41,13 +43,16 @@ def run_apply(args) -> int:
 
     from ..engine.batch import ApplySettings, apply_matrix, is_set_member
     from ..matrix import load_matrix
-    from ..report.summary import table
+    from ..report.summary import spreading_table, table
 
     if args.method not in ("nnls", "ls"):
         raise InputError(f"--method {args.method}: use nnls or ls")
+    if args.weights not in ("none", "noise"):
+        raise InputError(f"--weights {args.weights}: use none or noise")
     settings = ApplySettings(method=args.method, background=args.background, overwrite=args.overwrite,
                              residual=args.residual, saturation=numbers(args.saturation, "--saturation"),
-                             axes=args.axes, channel_names=name_list(args.channel_names),
+                             weights=args.weights, uncertainty=args.uncertainty, axes=args.axes,
+                             channel_names=name_list(args.channel_names),
                              memory=memory_size(args.memory), registration=registration_from(args))
     matrix = load_matrix(args.matrix)
     inputs = []
@@ -69,19 +74,14 @@ def run_apply(args) -> int:
 
     check_settings(matrix.provenance.get("acquisition"), inputs, strict=args.strict_settings, reference_name=args.matrix,
                    channels=matrix.channels, channel_names=name_list(args.channel_names))
-    penalty = matrix.noise_penalty()
+    matrix.check_unmixable(args.matrix)
     if not args.quiet:
         print(f"Matrix {args.matrix}: {len(matrix.labels)} labels in {len(matrix.channels)} channels; "
               f"condition number {matrix.condition_number():.2f}")
-        print("Noise penalty (variance factor): " + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, penalty)))
-    if matrix.condition_number() > 100 or np.max(penalty) > 10:
-        import warnings
-
-        from ..errors import InputWarning
-
-        warnings.warn(f"{args.matrix}: labels are nearly indistinguishable (condition number "
-                      f"{matrix.condition_number():.0f}); unmixed abundances will be very noisy", InputWarning,
-                      stacklevel=2)
+        print("Noise penalty (variance factor): "
+              + ", ".join(f"{lab} {p:.2f}" for lab, p in zip(matrix.labels, matrix.noise_penalty())))
+        if matrix.noise_model is not None:
+            print(spreading_table(matrix))
 
     from tqdm import tqdm
 

@@ -3,7 +3,7 @@
 Each input (every series of it) is cut into blocks of one (T, Z) position
 holding all channels and the full Y-X plane; each block is read, unmixed and
 written in turn, so memory stays bounded by a few planes whatever the size of
-the stack. Blocks are computed by dask in batches (local threads, or a
+the stack. Blocks are computed in batches (a local thread pool, or a
 running dask.distributed scheduler), so reading, computing and writing of
 different blocks overlap: the next batch is computed while this one is
 written. The tasks carry only file names and the solver, never open file
@@ -23,7 +23,9 @@ one *output set*, whose members are listed in :data:`OUTPUT_SET`:
   description;
 - ``<name>.saturation.ome.tif``: uint8 mask, 1 where any input channel is
   saturated;
-- ``<name>.residual.ome.tif`` (optional): root-mean-square misfit per pixel.
+- ``<name>.residual.ome.tif`` (optional): root-mean-square misfit per pixel;
+- ``<name>.standard-error.ome.tif`` (optional): float32 standard error of each
+  abundance, one channel per label (:mod:`unmix.engine.uncertainty`).
 
 A set is judged and replaced as a unit. Every member records, in its own
 metadata, the identity of the run that made it (matrix checksum, input
@@ -63,6 +65,7 @@ from ..io.images import (Image, check_axes, is_zarr_path, names_text, open_image
                          read_provenance)
 from ..matrix import BleedThroughMatrix
 from .solver import Unmixer
+from .uncertainty import error_sources
 
 MANIFEST = "unmix-manifest.json"
 MANIFEST_FORMAT = "unmix-manifest"
@@ -95,6 +98,8 @@ class ApplySettings:
     background: str = "matrix"  # "matrix", "estimate" or a path
     overwrite: bool = False
     residual: bool = False
+    weights: str = "none"  # "none" or "noise" (the matrix's noise model; see uncertainty.error_sources)
+    uncertainty: bool = False  # also write the standard-error member
     saturation: object = None  # one level, or one per channel; None: detected
     axes: str | None = None
     channel_names: Sequence[str] | None = None
@@ -117,6 +122,7 @@ class _BlockPixels(NamedTuple):
 
     block: np.ndarray  # (C, Y, X) input
     abundances: np.ndarray  # (K, Y, X)
+    errors: np.ndarray | None  # (K, Y, X) standard errors, when the set has that member
     mask: np.ndarray  # (Y, X) saturation mask
     unmixer: Unmixer
     background: np.ndarray
@@ -137,14 +143,17 @@ class OutputMember:
     planes: Callable[[_BlockPixels], np.ndarray]
 
 
-# A new companion output (an uncertainty image, say) is one more entry here. The first member
+# A new companion output is one more entry here. The first member
 # is streamed into its file as blocks are computed; the others are spooled and written after it.
 OUTPUT_SET = (
     OutputMember("unmixed", "float32", lambda m: list(m.labels), lambda s: True, lambda p: p.abundances),
     OutputMember("saturation", "uint8", lambda m: ["saturated"], lambda s: True, lambda p: p.mask[None]),
     OutputMember("residual", "float32", lambda m: ["residual_rms"], lambda s: s.residual,
                  lambda p: p.unmixer.residual(p.block, p.abundances, p.background)[None]),
+    OutputMember("standard-error", "float32", lambda m: list(m.labels), lambda s: s.uncertainty,
+                 lambda p: p.errors),
 )
+_ERRORS = "standard-error"  # the member computed with the abundances by the solver
 _MEMBERS = {member.name: member for member in OUTPUT_SET}
 _MASK = "saturation"  # the member recomputed when the input saturates below the provisional level
 
@@ -198,6 +207,7 @@ def _identity(matrix_sha: str, fingerprint: str, settings: ApplySettings) -> dic
         background = {"path": str(Path(background).resolve()), "fingerprint": input_fingerprint(background)}
     saturation = settings.saturation
     identity = {"matrix_sha256": matrix_sha, "input_fingerprint": fingerprint, "method": settings.method,
+                "weights": settings.weights,
                 "background": background,
                 "saturation": None if saturation is None else np.atleast_1d(saturation).astype(float).tolist(),
                 "axes": settings.axes,
@@ -460,10 +470,10 @@ def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unm
     the number of NaN pixels and the peak of each channel.
     """
     block = _read_registered(path, series, axes, channel_names, channels, key, levels, registration, z_position)
-    abundances = unmixer.unmix(block, background)
+    abundances, errors = unmixer.solve(block, background, errors=_ERRORS in members)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
     mask, peaks = _mask_and_peaks(block, levels)
-    pixels = _BlockPixels(block, abundances, mask, unmixer, background)
+    pixels = _BlockPixels(block, abundances, errors, mask, unmixer, background)
     return {name: _MEMBERS[name].planes(pixels) for name in members}, nan, peaks
 
 
@@ -504,6 +514,7 @@ def _provenance(matrix: BleedThroughMatrix, matrix_sha: str, path: Path, fingerp
         "noise_penalty": dict(zip(matrix.labels, map(float, matrix.noise_penalty()))),
         "condition_number": matrix.condition_number(),
         "registration": _registration_record(settings),
+        **error_sources(matrix, settings.weights, settings.uncertainty)[2],
     }
 
 
@@ -880,12 +891,11 @@ def _local_compute(task, argument_lists):
     fails, the others still running are waited for and those not started are cancelled."""
     from concurrent.futures import ThreadPoolExecutor
 
-    import dask
-
-    tasks = [dask.delayed(task, pure=False)(*arguments) for arguments in argument_lists]
-    pool = ThreadPoolExecutor(max_workers=max(1, min(len(tasks), os.cpu_count() or 1)))
+    # A plain pool: dask's local scheduler would import dask.distributed first (0.2 s a run).
+    pool = ThreadPoolExecutor(max_workers=max(1, min(len(argument_lists), os.cpu_count() or 1)))
     try:
-        return dask.compute(*tasks, scheduler="threads", pool=pool)
+        futures = [pool.submit(task, *arguments) for arguments in argument_lists]
+        return [future.result() for future in futures]
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
 
@@ -950,10 +960,10 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
             check_axes(settings.axes, "--axes")
         except ValueError as exc:
             raise InputError(str(exc)) from None
-    try:
-        unmixer = Unmixer(matrix.matrix, method=settings.method)
-    except ValueError as exc:
-        raise InputError(f"matrix: {exc}; measure or describe more channels, or fewer labels") from None
+    matrix.check_unmixable(warn=False)
+    noise, covariance, _ = error_sources(matrix, settings.weights, settings.uncertainty, warn=True)
+    unmixer = Unmixer(matrix.matrix, method=settings.method, labels=matrix.labels, noise=noise,
+                      column_covariance=covariance, weighted=settings.weights == "noise" and noise is not None)
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
     background_file = [] if settings.background in ("matrix", "estimate") else [settings.background]

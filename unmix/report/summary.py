@@ -73,3 +73,15 @@ def matrix_summary(matrix: BleedThroughMatrix, flags: bool = True) -> str:
     if flags:
         parts += [f"QC: {flag}" for flag in matrix.qc.get("flags", [])]
     return "\n".join(parts)
+
+
+def spreading_table(matrix: BleedThroughMatrix) -> str:
+    """The matrix's spillover spreading (its noise model through least-squares unmixing): each
+    label's read-noise floor and the spread each label's signal adds to the others."""
+    from ..engine.spreading import spreading_matrix
+
+    spread, floor = spreading_matrix(matrix.matrix, matrix.noise_model)
+    rows = [["spread from \\ into", *matrix.labels], ["(read-noise floor)", *(f"{f:.2f}" for f in floor)]]
+    rows += [[label, *(f"{value:.3f}" for value in spread[j])] for j, label in enumerate(matrix.labels)]
+    return ("Spillover spreading (standard deviation of a label = sqrt(floor^2 + sum of spread^2 x abundance of "
+            "each label), abundance units)\n" + table(rows))
