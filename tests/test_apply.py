@@ -581,3 +581,22 @@ def test_a_huge_plane_is_planned_within_the_budget():
     batch = _blocks_per_batch(image, rows, 3, settings)
     in_flight = _IN_FLIGHT * batch * rows * 100_000 * _bytes_per_pixel(3, 3, 2, settings)
     assert rows % 16 == 0 and 16 <= rows < 100_000 and in_flight <= settings.memory
+
+
+def test_measure_prints_and_stores_the_spillover_spreading(demo, tmp_path, capsys):
+    # The stored figures are the noise model propagated through least squares (Nguyen et al. 2013,
+    # Cytometry A 83:306; checked against simulated controls in tests/test_uncertainty.py).
+    from unmix.matrix import load_matrix
+    from unmix.measure.spreading import spreading_matrix
+
+    argv = ["measure", "--bootstrap", "200", "-o", tmp_path / "m.json", "--unstained", demo["unstained"]]
+    for label, paths in demo["controls"].items():
+        argv += ["--control", f"{label}={','.join(map(str, paths))}"]
+    code, out, _ = _run(argv, capsys)
+    assert code == 0 and "Spillover spreading" in out
+    matrix = load_matrix(tmp_path / "m.json")
+    spread, floor = spreading_matrix(matrix.matrix, matrix.noise_model)
+    stored = matrix.qc["spreading"]
+    assert stored["labels"] == list(matrix.labels)
+    np.testing.assert_allclose(stored["matrix"], spread, rtol=1e-12)
+    np.testing.assert_allclose(stored["floor"], floor, rtol=1e-12)

@@ -128,3 +128,16 @@ def test_io_imports_nothing_of_ours_but_the_error_types():
 def test_the_rule_itself(importer, imported, bad):
     # The checker must catch a violation, not merely find none (common practice: test the test).
     assert (_violation(importer, imported) is not None) is bad
+
+
+def test_the_parser_imports_no_heavy_library():
+    # `unmix --help` and every one-line error must start fast: the subcommands import their
+    # libraries when they run, not when the parser is built (start-up ratio in bench_apply.py).
+    import subprocess
+    import sys
+
+    heavy = ("numba", "scipy", "dask", "tifffile", "matplotlib", "zarr", "skimage")
+    code = ("import sys; from unmix.cli.main import build_parser; build_parser(); "
+            f"print(','.join(m for m in {heavy!r} if m in sys.modules))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == ""

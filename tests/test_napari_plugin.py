@@ -303,7 +303,7 @@ def test_unmix_widget_keeps_dask_layers_lazy(qtbot, make_napari_viewer, errors, 
     np.testing.assert_array_equal(np.asarray(layer.data), expected[1])
 
 
-def _matrix_file(folder, saturation=None):
+def _matrix_file(folder, saturation=None, noise_model=None):
     from unmix.matrix import BleedThroughMatrix
 
     values = np.array([[1.0, 0.02, 0.0], [0.25, 1.0, 0.0], [0.02, 0.39, 1.0]])
@@ -312,7 +312,35 @@ def _matrix_file(folder, saturation=None):
                               primary={"Pondpetal": "blue450", "Fernlight": "green525", "Emberin": "orange600"},
                               matrix=values, ci95_low=values - 0.01, ci95_high=values + 0.01,
                               background=np.full(3, 100.0), background_source="dark",
-                              saturation=saturation).save(folder / "m.json")
+                              saturation=saturation, noise_model=noise_model).save(folder / "m.json")
+
+
+def test_unmix_widget_adds_standard_errors_as_hidden_layers(qtbot, make_napari_viewer, errors, tmp_path):
+    # Noise-weighted, with standard errors: the same numbers as the library's solver (whose errors
+    # are checked for coverage against seeded simulations in tests/test_uncertainty.py).
+    from unmix.matrix import load_matrix
+
+    viewer = make_napari_viewer()
+    noise = {"read_variance": [25.0, 30.0, 20.0], "gain": [2.0, 2.5, 1.5], "source": "controls"}
+    matrix = load_matrix(_matrix_file(tmp_path, noise_model=noise))
+    plane = np.random.default_rng(3).integers(100, 3000, (3, 32, 32)).astype(np.uint16)
+    viewer.add_image(plane, name="img", metadata={"channel_names": list(matrix.channels)})
+    unmix = UnmixWidget(viewer)
+    unmix.image.setCurrentText("img")
+    unmix.matrix_source.setCurrentText("file")
+    unmix.matrix_path.setText(str(tmp_path / "m.json"))
+    unmix.weights.setCurrentText("noise")
+    unmix.errors.setChecked(True)
+    unmix.unmix()
+    qtbot.waitUntil(lambda: not unmix.runner.busy and "Emberin (standard error)" in viewer.layers, timeout=WAIT_MS)
+    expected, expected_errors = Unmixer.for_matrix(matrix, "nnls", "noise", True).solve(plane, matrix.background,
+                                                                                       errors=True)
+    for k, label in enumerate(matrix.labels):
+        np.testing.assert_array_equal(viewer.layers[f"{label} (unmixed)"].data, expected[k])
+        layer = viewer.layers[f"{label} (standard error)"]
+        np.testing.assert_array_equal(layer.data, expected_errors[k])
+        assert not layer.visible
+    assert "standard errors" in unmix.status.text() and not errors
 
 
 

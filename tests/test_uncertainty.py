@@ -10,7 +10,7 @@ import pytest
 from scipy.optimize import nnls
 
 from unmix.engine.solver import Unmixer
-from unmix.engine.spreading import label_noise, spreading_matrix
+from unmix.measure.spreading import label_noise, spreading_matrix
 from unmix.engine.uncertainty import estimator_rows, standard_errors
 from unmix.engine.weighting import unmix_weighted
 
@@ -130,7 +130,7 @@ def test_standard_errors_nan_where_abundances_are_nan_and_need_a_source():
 
 def _abundance_at_snr(snr):
     """Equal abundances of the three labels, scaled so that the least-squares noise of the
-    noisiest label is abundance / snr (the brightness-aware noise of unmix.engine.spreading)."""
+    noisiest label is abundance / snr (the brightness-aware noise of unmix.measure.spreading)."""
     low, high = 1e-3, 1e7
     for _ in range(200):
         mid = np.sqrt(low * high)

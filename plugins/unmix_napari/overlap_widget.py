@@ -7,7 +7,7 @@ from napari.layers import Image as ImageLayer
 from napari.layers import Labels as LabelsLayer
 from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout
 
-from unmix.coloc.verdict import ROUNDS
+from unmix.coloc import ROUNDS
 from unmix.report.style import VERDICT_LOOK
 
 from .layers import (NONE, LayerChoice, Panel, Worker, default_image, fill_table, guarded, layer_image, narrow,

@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import numpy as np
-from qtpy.QtWidgets import QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit, QPushButton, QSpinBox
+from qtpy.QtWidgets import (QCheckBox, QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit,
+                            QPushButton, QSpinBox)
 
 from unmix.report.style import label_colour
 
@@ -13,7 +14,8 @@ from .layers import (LayerChoice, Panel, Worker, chosen_matrix, default_image, g
 
 
 class UnmixWidget(Panel):
-    """Unmix a multichannel image layer: one layer per label and the saturation mask."""
+    """Unmix a multichannel image layer: one layer per label, the saturation mask and, when asked
+    for, each label's standard error (hidden layers, to inspect where an abundance is uncertain)."""
 
     def __init__(self, napari_viewer):
         super().__init__()
@@ -33,6 +35,11 @@ class UnmixWidget(Panel):
         row.addWidget(browse)
         self.method = QComboBox()
         self.method.addItems(["nnls", "ls"])
+        self.weights = QComboBox()
+        self.weights.addItems(["none", "noise"])
+        self.weights.setToolTip("noise: weigh channels by the matrix's detector noise model (weighted least squares)")
+        self.errors = QCheckBox("add each label's standard error")
+        self.errors.setToolTip("needs a measured matrix (noise model or intervals)")
         for signal in (napari_viewer.layers.events.inserted, napari_viewer.layers.events.removed):
             signal.connect(lambda *_: refresh_matrix_sources(self.viewer, self.matrix_source))
         refresh_matrix_sources(napari_viewer, self.matrix_source)
@@ -41,6 +48,8 @@ class UnmixWidget(Panel):
         layout.addRow("Matrix", self.matrix_source)
         layout.addRow("Matrix file", row)
         layout.addRow("Method", self.method)
+        layout.addRow("Weights", self.weights)
+        layout.addRow("Uncertainty", self.errors)
         self.button = QPushButton("Unmix")
         self.button.clicked.connect(self.unmix)
         layout.addRow(self.button)
@@ -74,40 +83,47 @@ class UnmixWidget(Panel):
 
             background = np.array([summarise_channel(np.asarray(image.data[c][..., ::4, ::4])).background
                                    for c in range(image.n_channels)])
-        unmixer = Unmixer(matrix.matrix, method=self.method.currentText())
+        with_errors = self.errors.isChecked()
+        unmixer = Unmixer.for_matrix(matrix, self.method.currentText(), self.weights.currentText(), with_errors)
         levels = matrix.saturation
 
         def work():
             data = image.data
+            errors = None
             if hasattr(data, "map_blocks"):  # dask: lazily, block by block (larger than memory)
                 blocks = data.rechunk({0: -1})
-                abundances = blocks.map_blocks(lambda b: unmixer.unmix(np.asarray(b), background),
-                                               dtype=np.float32, chunks=((len(matrix.labels),),) + blocks.chunks[1:])
+                chunks = ((len(matrix.labels),),) + blocks.chunks[1:]
+                abundances = blocks.map_blocks(lambda b: unmixer.solve(np.asarray(b), background)[0],
+                                               dtype=np.float32, chunks=chunks)
+                if with_errors:
+                    errors = blocks.map_blocks(lambda b: unmixer.solve(np.asarray(b), background, errors=True)[1],
+                                               dtype=np.float32, chunks=chunks)
                 saturated = None
             else:
-                abundances = unmixer.unmix(np.asarray(data), background)
+                abundances, errors = unmixer.solve(np.asarray(data), background, errors=with_errors)
                 saturated = np.zeros(data.shape[1:], np.uint8)
                 if levels is not None:
                     for c in range(data.shape[0]):
                         saturated |= data[c] >= levels[c]
-            return abundances, saturated
+            return abundances, saturated, errors
 
         def done(result):
-            abundances, saturated = result
+            abundances, saturated, errors = result
             names = {}
             for k, label in enumerate(matrix.labels):
                 plane = abundances[k]
-                sample = np.asarray(plane[(slice(None, None, max(1, plane.shape[0] // 64)),) * plane.ndim]) \
-                    if hasattr(plane, "compute") else plane
-                high = float(np.nanpercentile(sample, 99.5)) if np.isfinite(sample).any() else 1.0
                 name = self._add_or_update(plane, label, {
                     "colormap": label_colour(k)[0], "blending": "additive",
-                    "contrast_limits": (0.0, max(high, 1e-6)),
+                    "contrast_limits": _display_range(plane),
                     # The layer is one channel, named by its label: saved, it is that label's channel.
                     "metadata": {CHANNEL_NAMES: [label],
                                  "unmix_provenance": {"matrix_sha256": matrix.sha256(), "method": unmixer.method,
                                                       "source_layer": layer.name}}})
                 names[label] = name
+            for k, label in enumerate(matrix.labels if errors is not None else ()):
+                self._add_or_update(errors[k], label, {
+                    "colormap": "gray", "visible": False, "contrast_limits": _display_range(errors[k]),
+                    "metadata": {CHANNEL_NAMES: [f"{label} standard error"]}}, kind="standard error")
             name = f"saturated ({layer.name})"
             if saturated is not None and saturated.any():
                 if name in self.viewer.layers:
@@ -125,16 +141,24 @@ class UnmixWidget(Panel):
                 raw.visible = False
             count = "" if saturated is None else (f"; {int(saturated.sum())} saturated pixels marked" if saturated.any()
                                                   else "; no pixel saturated")
-            self.status.setText(f"unmixed {layer.name!r} into {', '.join(matrix.labels)}{count} (the raw image is "
-                                "hidden: tick its eye to compare)")
+            extra = "" if errors is None else "; standard errors added as hidden layers"
+            self.status.setText(f"unmixed {layer.name!r} into {', '.join(matrix.labels)}{count}{extra} (the raw image "
+                                "is hidden: tick its eye to compare)")
 
         self.runner.start(work, done, "Unmixing")
 
-    def _add_or_update(self, data, label, options) -> str:
-        name = f"{label} (unmixed)"
+    def _add_or_update(self, data, label, options, kind: str = "unmixed") -> str:
+        name = f"{label} ({kind})"
         if name in self.viewer.layers:
             self.viewer.layers[name].data = data
         else:
             self.viewer.add_image(data, name=name, **options)
         return name
 
+
+def _display_range(plane) -> tuple[float, float]:
+    """0 to the 99.5th percentile of a plane (of a sample of it, when it is lazy)."""
+    sample = np.asarray(plane[(slice(None, None, max(1, plane.shape[0] // 64)),) * plane.ndim]) \
+        if hasattr(plane, "compute") else plane
+    high = float(np.nanpercentile(sample, 99.5)) if np.isfinite(sample).any() else 1.0
+    return 0.0, max(high, 1e-6)

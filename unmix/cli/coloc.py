@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..coloc.verdict import ROUNDS
+from ..coloc import ROUNDS
 from ..errors import InputError, InputWarning
 from .args import (add_image_options, add_registration_option, add_settings_option, check_output, name_list,
                    registration_from)

@@ -46,7 +46,7 @@ MAX_BOOTSTRAP = 100_000
 
 def run_measure(args) -> int:
     from ..measure.controls import MeasureSettings, measure_files
-    from ..report.summary import matrix_summary
+    from ..report.summary import matrix_summary, spreading_table
 
     controls = label_paths(args.control, "--control")
     if not controls:
@@ -84,6 +84,8 @@ def run_measure(args) -> int:
         matrix.save_csv(csv_path)
     if not args.quiet:
         print(matrix_summary(matrix, flags=False))
+        if matrix.noise_model is not None:
+            print(spreading_table(matrix))
         print(f"\nwrote {output}" + (f" and {csv_path}" if csv_path else ""))
     return 0
 

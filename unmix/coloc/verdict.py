@@ -63,6 +63,7 @@ import numpy as np
 
 from ..errors import InputError, InputWarning
 from ..matrix import BleedThroughMatrix
+from . import ROUNDS
 from . import statistics as coloc
 from .corrected import (NOISE_MODEL_RELATIVE_SD, ChannelSums, CorrectedCorrelation, NoiseSums, corrected_from_sums,
                         unmixing_rows)
@@ -83,7 +84,6 @@ VERDICTS = {
                     "labels, or measure more rounds",
 }
 MATRIX_DRAWS = 200
-ROUNDS = 1000
 
 
 @dataclass(frozen=True)

@@ -7,8 +7,8 @@ outputs with their saturation masks. The solver (:mod:`.solver`), its
 generated vectorised kernels (:mod:`.codegen` writes :mod:`.unrolled`), the
 generic per-pixel kernel (:mod:`.pixel_solver`), noise weighting
 (:mod:`.weighting`, kernel :mod:`.weighted_solver`), standard errors
-(:mod:`.uncertainty`), spillover spreading (:mod:`.spreading`) and the batch
-runner (:mod:`.batch`).
+(:mod:`.uncertainty`) and the batch runner (:mod:`.batch`). The spillover
+spreading of a matrix is a measured property: :mod:`unmix.measure.spreading`.
 """
 
 from .._lazy import lazy_exports
@@ -17,8 +17,6 @@ __getattr__, __dir__, __all__ = lazy_exports(__name__, {
     "Unmixer": "solver",
     "unmix_weighted": "weighting",
     "standard_errors": "uncertainty",
-    "spreading_matrix": "spreading",
-    "label_noise": "spreading",
     "apply_matrix": "batch",
     "ApplySettings": "batch",
     "FileResult": "batch",

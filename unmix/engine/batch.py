@@ -960,10 +960,7 @@ def apply_matrix(matrix: BleedThroughMatrix, inputs: Sequence, outdir, *, settin
             check_axes(settings.axes, "--axes")
         except ValueError as exc:
             raise InputError(str(exc)) from None
-    matrix.check_unmixable(warn=False)
-    noise, covariance, _ = error_sources(matrix, settings.weights, settings.uncertainty, warn=True)
-    unmixer = Unmixer(matrix.matrix, method=settings.method, labels=matrix.labels, noise=noise,
-                      column_covariance=covariance, weighted=settings.weights == "noise" and noise is not None)
+    unmixer = Unmixer.for_matrix(matrix, settings.method, settings.weights, settings.uncertainty, warn=True)
     matrix_sha = matrix_sha or matrix.sha256()
     plan = plan_outputs(inputs, outdir)
     background_file = [] if settings.background in ("matrix", "estimate") else [settings.background]

@@ -182,7 +182,7 @@ class Unmixer:
         check_unmixable(m, self.labels, warn=False)
         object.__setattr__(self, "matrix", m)
         if self.noise is not None:
-            from .weighting import noise_arrays
+            from ..measure.noise import noise_arrays
 
             noise_arrays(self.noise, m.shape[0])
         elif self.weighted:
@@ -198,6 +198,20 @@ class Unmixer:
     def __setstate__(self, state):
         for key, value in state.items():
             object.__setattr__(self, key, value)
+
+    @classmethod
+    def for_matrix(cls, matrix, method: str = "nnls", weights: str = "none", uncertainty: bool = False,
+                   warn: bool = False) -> "Unmixer":
+        """The unmixer of a :class:`unmix.matrix.BleedThroughMatrix` with what its file offers:
+        its labels, and for ``weights="noise"`` or `uncertainty` its noise model and column
+        covariance (:func:`unmix.engine.uncertainty.error_sources` says what is used, and warns
+        when `warn`)."""
+        from .uncertainty import error_sources
+
+        matrix.check_unmixable(warn=False)
+        noise, covariance, _ = error_sources(matrix, weights, uncertainty, warn=warn)
+        return cls(matrix.matrix, method=method, labels=matrix.labels, noise=noise, column_covariance=covariance,
+                   weighted=weights == "noise" and noise is not None)
 
     @property
     def n_labels(self) -> int:

@@ -34,7 +34,7 @@ import numpy as np
 from ..errors import InputError, InputWarning
 from ..matrix import BleedThroughMatrix
 from .solver import Unmixer, support_groups
-from .weighting import noise_arrays
+from ..measure.noise import noise_arrays
 
 _CHUNK = 1 << 16
 
@@ -103,14 +103,14 @@ def error_sources(matrix: BleedThroughMatrix, weights: str = "none", uncertainty
     coefficients of standard deviation half-width / 1.96; None without
     either), and for the outputs' metadata what was asked for and what was
     used, with the spillover-spreading figures when there is a noise model
-    (:mod:`unmix.engine.spreading`). Weights asked for without a noise model
+    (:mod:`unmix.measure.spreading`). Weights asked for without a noise model
     fall back to equal weights, and errors without one of the two sources
     use the other, each with a warning (`warn`); errors without either are
     an InputError.
     """
     import warnings
 
-    from .spreading import spreading_matrix
+    from ..measure.spreading import spreading_record
 
     if weights not in ("none", "noise"):
         raise InputError(f"--weights {weights}: use none or noise")
@@ -141,9 +141,5 @@ def error_sources(matrix: BleedThroughMatrix, weights: str = "none", uncertainty
             "noise": None if noise is None else f"noise model ({noise['source']})",
             "matrix": None if covariance is None else covariance_source}
     if noise is not None:
-        spread, floor = spreading_matrix(matrix.matrix, noise)
-        record["spreading"] = {
-            "labels": list(matrix.labels), "floor": [float(f) for f in floor], "matrix": spread.tolist(),
-            "meaning": "standard deviation of label k = sqrt(floor[k]^2 + sum_j matrix[j][k]^2 x abundance j) "
-                       "(least squares)"}
+        record["spreading"] = spreading_record(matrix.matrix, matrix.labels, noise)
     return noise, covariance, record

@@ -25,23 +25,13 @@ from __future__ import annotations
 import numpy as np
 
 from ..threads import map_in_threads
+from ..measure.noise import noise_arrays
 from .solver import Unmixer, support_groups
 
 # Pixels weighted per pass: bounds the memory of the per-pixel channel variances.
 _CHUNK = 1 << 16
 # Pixels per batch of per-pixel C x C matrices (the matrix part of the errors).
 _GROUP = 2048
-
-
-def noise_arrays(noise: dict, n_channels: int) -> tuple[np.ndarray, np.ndarray]:
-    """(read_variance, gain) of a noise model ``{"read_variance": (C,), "gain": (C,), ...}``, checked."""
-    read = np.asarray(noise["read_variance"], dtype=np.float64)
-    gain = np.asarray(noise["gain"], dtype=np.float64)
-    if read.shape != (n_channels,) or gain.shape != (n_channels,):
-        raise ValueError(f"noise model needs {n_channels} read variances and gains (one per channel)")
-    if not (np.all(np.isfinite(read)) and np.all(np.isfinite(gain)) and read.min() >= 0 and gain.min() >= 0):
-        raise ValueError("noise model read variances and gains must be finite and >= 0")
-    return read, gain
 
 
 def channel_variance(matrix: np.ndarray, read: np.ndarray, gain: np.ndarray, abundances: np.ndarray) -> np.ndarray:

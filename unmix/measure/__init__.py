@@ -5,7 +5,9 @@ specimen or a dark frame. Out: a :class:`unmix.matrix.BleedThroughMatrix`
 with 95 % intervals and QC figures (detector faults, registration, fields
 that disagree). Also the per-channel background and saturation levels
 (:mod:`.levels`) that later stages reuse, the chromatic registration
-(:mod:`.registration`) and the autofluorescence label (:mod:`.autofluorescence`).
+(:mod:`.registration`), the autofluorescence label (:mod:`.autofluorescence`),
+the detector's noise model (:mod:`.noise`) and the spillover spreading that
+follows from it (:mod:`.spreading`).
 """
 
 from .._lazy import lazy_exports
@@ -25,4 +27,6 @@ __getattr__, __dir__, __all__ = lazy_exports(__name__, {
     "load_registration": "registration",
     "register_stack": "registration",
     "register_plane": "registration",
+    "spreading_matrix": "spreading",
+    "label_noise": "spreading",
 })

@@ -1082,11 +1082,16 @@ def measure_matrix(controls: Mapping[str, Sequence], *, unstained=None, dark=Non
         "between_field_sd": "standard deviation of the coefficient between fields (random effects; null with "
                             "fewer than 3 fields)",
     }
+    noise_model = _noise_model(results, n_channels, dark_read)
+    if noise_model is not None:
+        from .spreading import spreading_record
+
+        qc["spreading"] = spreading_record(matrix, labels, noise_model)
     return BleedThroughMatrix(
         kind="measured", channels=tuple(channels), labels=tuple(labels), primary=primaries,
         matrix=matrix, ci95_low=low, ci95_high=high, background=np.asarray(background, dtype=float),
         background_source=background_source, saturation=np.asarray(levels, dtype=float),
-        noise_model=_noise_model(results, n_channels, dark_read), column_covariance=covariance, qc=qc,
+        noise_model=noise_model, column_covariance=covariance, qc=qc,
         provenance={"settings": settings.__dict__.copy()},
     )
 

@@ -222,3 +222,14 @@ def independent_stride(correlation: float, most: int = 4) -> int:
         if max(correlation, 0.0) ** (stride * stride) <= 0.1:
             return stride
     return most
+
+
+def noise_arrays(noise: dict, n_channels: int) -> tuple[np.ndarray, np.ndarray]:
+    """(read_variance, gain) of a noise model ``{"read_variance": (C,), "gain": (C,), ...}``, checked."""
+    read = np.asarray(noise["read_variance"], dtype=np.float64)
+    gain = np.asarray(noise["gain"], dtype=np.float64)
+    if read.shape != (n_channels,) or gain.shape != (n_channels,):
+        raise ValueError(f"noise model needs {n_channels} read variances and gains (one per channel)")
+    if not (np.all(np.isfinite(read)) and np.all(np.isfinite(gain)) and read.min() >= 0 and gain.min() >= 0):
+        raise ValueError("noise model read variances and gains must be finite and >= 0")
+    return read, gain

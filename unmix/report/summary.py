@@ -78,7 +78,7 @@ def matrix_summary(matrix: BleedThroughMatrix, flags: bool = True) -> str:
 def spreading_table(matrix: BleedThroughMatrix) -> str:
     """The matrix's spillover spreading (its noise model through least-squares unmixing): each
     label's read-noise floor and the spread each label's signal adds to the others."""
-    from ..engine.spreading import spreading_matrix
+    from ..measure.spreading import spreading_matrix
 
     spread, floor = spreading_matrix(matrix.matrix, matrix.noise_model)
     rows = [["spread from \\ into", *matrix.labels], ["(read-noise floor)", *(f"{f:.2f}" for f in floor)]]

@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .weighting import noise_arrays
+from .noise import noise_arrays
 
 
 def spreading_matrix(matrix, noise: dict) -> tuple[np.ndarray, np.ndarray]:
@@ -50,3 +50,11 @@ def label_noise(matrix, noise: dict, abundances) -> np.ndarray:
     spread, floor = spreading_matrix(matrix, noise)
     a = np.maximum(np.asarray(abundances, dtype=np.float64), 0.0)
     return np.sqrt(floor**2 + (spread**2).T @ a)
+
+
+def spreading_record(matrix, labels, noise: dict) -> dict:
+    """The spreading figures as stored in a matrix file's ``qc`` and in the outputs' metadata."""
+    spread, floor = spreading_matrix(matrix, noise)
+    return {"labels": list(labels), "floor": [float(f) for f in floor], "matrix": spread.tolist(),
+            "meaning": "standard deviation of label k = sqrt(floor[k]^2 + sum_j matrix[j][k]^2 x abundance j) "
+                       "(least squares, abundance units)"}
