@@ -136,7 +136,8 @@ def test_first_screen_of_the_demo_report_shows_every_verdict(demo_report, tmp_pa
     # In a 1400 x 1000 window, each pair's verdict (symbol, words and code) lies wholly on the
     # first screen, as the browser lays it out (bounding boxes from the page itself).
     chromium = _chromium()
-    records = json.loads((demo_report.parent / "coloc.json").read_text())["results"]
+    records = [record for name in ("coloc.json", "coloc_stack.json")  # the plane's pairs, then the z-stack's
+               for record in json.loads((demo_report.parent / name).read_text())["results"]]
     dom = _probe(chromium, demo_report, tmp_path, (
         "const rows = [...document.querySelectorAll('table.answer tbody tr')].map(row => {"
         " const badge = row.querySelector('.badge'), code = row.querySelector('code.verdict');"
@@ -147,7 +148,7 @@ def test_first_screen_of_the_demo_report_shows_every_verdict(demo_report, tmp_pa
     rows, width, _ = _attribute(dom, "data-verdicts")
     height = 1000  # the screenshot's viewport; headless --dump-dom reports a shorter inner window
     assert width == 1400  # the layout's width, on which the positions depend
-    assert len(rows) == len(records) == 2
+    assert len(rows) == len(records) == 4
     for (badge, code, pair, bottom), record in zip(rows, records):
         look = VERDICT_LOOK[record["verdict"]]
         assert code == record["verdict"] and badge == f"{look.symbol} {look.heading}"

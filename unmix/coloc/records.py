@@ -1,4 +1,5 @@
-"""The colocalization results file (``unmix coloc --json``), read back and checked.
+"""The colocalization results file (``unmix coloc --json``): its result objects, and the file read
+back and checked.
 
 A file holds one result object, or ``{"results": [...], "time_summaries": [...]}``.
 Every value a later step reads is checked for its type before use, so that a
@@ -17,6 +18,21 @@ from .verdict import VERDICTS
 
 _NUMBERS = ("pearson", "spearman", "manders_m1", "manders_m2", "m1_above_own_threshold", "m2_above_own_threshold",
             "overlap", "icq", "p_value", "pearson_noise_corrected", "n_pixels")
+
+
+def result_record(result, *, image, matrix_sha256: str, object_id: int | None = None, frame: int | None = None,
+                  planes: tuple[int, int] | None = None) -> dict:
+    """One result object of the file: a :class:`~unmix.coloc.verdict.PairResult` with where it was measured.
+
+    `planes` (first, last) are the planes of a stack that were measured (None for a plane);
+    `frame` the time point of a series (None otherwise). A stack's per-plane r's go under
+    ``plane_profile``.
+    """
+    record = result.to_dict()
+    record.update({"image": str(image), "object": object_id, "matrix_sha256": matrix_sha256, "frame": frame,
+                   "planes": None if planes is None else [int(planes[0]), int(planes[1])],
+                   "plane_profile": record.pop("planes")})
+    return record
 
 
 def _is_number(value) -> bool:
@@ -64,7 +80,7 @@ def check_record(record, where: str) -> dict:
         raise InputError(f"{where}: unknown verdict {verdict!r}; give the file written by unmix coloc --json")
     for name in ("before", "after"):
         _check_side(record.get(name), name, where)
-    for key in ("inflation", "saturated_pixels", "pixels", "min_r", "alpha"):
+    for key in ("inflation", "saturated_pixels", "pixels", "min_r", "alpha", "z_step_um"):
         if key in record and not _number_or_null(record[key]):
             raise InputError(f"{where}: '{key}' must be a number or null; give the file written by unmix coloc")
     for key in ("image", "histogram", "matrix_sha256", "reason", "flat_field", "noise_model", "matrix_uncertainty",
