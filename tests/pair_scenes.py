@@ -20,6 +20,7 @@ GAIN = 2.0          # ADU per electron
 OFFSET = 100.0      # ADU
 READ_NOISE = 3.0    # electrons
 BACKGROUND_E = 4.0  # electrons of diffuse background per pixel and channel
+ANISOTROPIC = (2.5, 1.2, 1.2)  # PSF sigma in z, y, x (voxels): the axial blur is wider
 
 
 def structure(rng, shape, psf_sigma=1.5) -> np.ndarray:
@@ -144,3 +145,47 @@ def control_fields(seed: int, n_fields: int, *, leak: float = 0.3, between_sd: f
         raw = GAIN * rng.poisson(electrons) + rng.normal(0, GAIN * READ_NOISE, electrons.shape) + OFFSET
         fields.append(Image(np.round(raw).astype(np.uint16), "CYX", ("ch0", "ch1")))
     return fields
+
+
+def time_series(seed, frames=4, bleach=0.0, photoconvert=0.0):
+    """(T, C, Z, Y, X) of 3 channels and 2 labels; A fades by `bleach` per frame; from frame 2 on, a part
+    `photoconvert` of A emits with another spectrum (the matrix no longer fits)."""
+    rng = np.random.default_rng(seed)
+    shape = (3, 64, 64)
+    matrix = np.array([[1.0, 0.05], [0.3, 1.0], [0.1, 0.4]])
+    s1, s2 = structure(rng, shape, ANISOTROPIC), structure(rng, shape, ANISOTROPIC)
+    data = []
+    for t in range(frames):
+        a = 2000 * (1 - bleach) ** t * s1
+        electrons = np.tensordot(matrix, np.stack([a, 800 * (0.5 * s1 + 0.5 * s2)]), axes=(1, 0))
+        if t >= 2 and photoconvert:
+            electrons += np.tensordot([0.0, 0.1, 1.0], photoconvert * a[None], axes=0)[:, 0]
+        data.append(GAIN * rng.poisson(electrons + BACKGROUND_E)
+                    + rng.normal(0, GAIN * READ_NOISE, electrons.shape) + OFFSET)
+    return np.stack(data), matrix
+
+
+def series_matrix(matrix, path):
+    """The matrix file of :func:`time_series` (measured, with intervals, covariance and the camera's noise line)."""
+    from unmix.matrix import BleedThroughMatrix
+
+    covariance = np.stack([np.diag((0.003 * (matrix[:, k] != 1)) ** 2) for k in range(2)])
+    BleedThroughMatrix(kind="measured", channels=("c0", "c1", "c2"), labels=("A", "B"),
+                       primary={"A": "c0", "B": "c1"}, matrix=matrix, ci95_low=matrix - 0.006 * (matrix != 1),
+                       ci95_high=matrix + 0.006 * (matrix != 1), background=np.full(3, OFFSET + GAIN * BACKGROUND_E),
+                       background_source="dark", saturation=np.full(3, 65535.0),
+                       noise_model={"read_variance": [(GAIN * READ_NOISE) ** 2 + GAIN**2 * BACKGROUND_E] * 3,
+                                    "gain": [GAIN] * 3, "source": "controls"},
+                       column_covariance=covariance).save(path)
+    return path
+
+
+def write_stack(path, raw, axes="CZYX", names=("ch0", "ch1"), z_um=None):
+    """`raw` as an OME-TIFF (tifffile, the reference writer) with axes, channel names and Z spacing."""
+    import tifffile
+
+    metadata = {"axes": axes, "Channel": {"Name": list(names)}}
+    if z_um:
+        metadata["PhysicalSizeZ"] = z_um
+    tifffile.imwrite(path, np.round(raw).astype(np.uint16), ome=True, metadata=metadata)
+    return path

@@ -578,6 +578,12 @@ def test_coloc_histograms_with_long_and_mathematical_label_names(tmp_path, demo,
     (lambda r: r.update(inflation=10**400), "'inflation'"),
     (lambda r: r.update(object=1.5), "'object'"),
     (lambda r: r.update(plane_profile=[{"plane": "top"}]), "plane_profile"),
+    (lambda r: r.update(plane_profile=[{"plane": 10**12, "pearson_before": 0.1, "pearson_noise_corrected": 0.1,
+                                        "interval": None}]), "plane_profile"),
+    (lambda r: r.update(planes=[4, 1]), "'planes'"),
+    (lambda r: r.update(planes="all"), "'planes'"),
+    (lambda r: r.update(z_step_um="0.3 um"), "'z_step_um'"),
+    (lambda r: r.update(depth_trend={"slope_per_plane": 0.01, "flagged": "yes"}), "depth_trend"),
 ])
 def test_report_refuses_malformed_coloc_results(tmp_path, capsys, change, words):
     # Hand-edited or damaged coloc files: one line naming the file and the key, exit 2, nothing written.
@@ -595,6 +601,42 @@ def test_report_refuses_malformed_coloc_results(tmp_path, capsys, change, words)
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "c.json" in err[0] and words in err[0]
     assert not (tmp_path / "r.html").exists()
+
+
+@pytest.mark.parametrize("change, words", [
+    (lambda d: d.update(time_summaries={"pair": ["A", "B"]}), "'time_summaries' must be a list"),
+    (lambda d: d["time_summaries"][0].update(frames=[]), "'frames'"),
+    (lambda d: d["time_summaries"][0].update(frames=["first", "last"]), "'frames'"),
+    (lambda d: d["time_summaries"][0].update(verdicts={"maybe": 2}), "'verdicts'"),
+    (lambda d: d["time_summaries"][0].update(pearson_noise_corrected=[0.3]), "'pearson_noise_corrected'"),
+    (lambda d: d["time_summaries"][0].update(intervals=[[0.1], None]), "'intervals'"),
+    (lambda d: d["time_summaries"][0]["bleaching"]["A"].update(flagged="yes"), "'bleaching'"),
+    (lambda d: d["time_summaries"][0]["bleaching"]["B"].update(mean_signal=[1.0, "x"]), "'bleaching'"),
+    (lambda d: d["time_summaries"][0]["residual"].pop("note"), "'residual'"),
+    (lambda d: d["time_summaries"][0].update(bleach_limit=20), "'bleach_limit'"),
+    (lambda d: d["time_summaries"][0].update(notes="bleached"), "'notes'"),
+    (lambda d: d["time_summaries"][0].update(pair=["A"]), "'pair'"),
+])
+def test_report_refuses_malformed_time_summaries(tmp_path, capsys, change, words):
+    # A time series' results as unmix coloc writes them, then one value damaged: one line naming the
+    # file, the summary and the key; exit 2; nothing written.
+    from pair_scenes import series_matrix, time_series, write_stack
+
+    data, truth = time_series(53, frames=2)
+    matrix = series_matrix(truth, tmp_path / "m.json")
+    movie = write_stack(tmp_path / "movie.ome.tif", data[:, :, :1], axes="TCZYX", names=("c0", "c1", "c2"))
+    assert main(["coloc", str(movie), "--matrix", str(matrix), "--labels", "A,B", "--rounds", "19", "--json",
+                 str(tmp_path / "t.json"), "--quiet"]) == 0
+    document = json.loads((tmp_path / "t.json").read_text())
+    change(document)
+    (tmp_path / "t.json").write_text(json.dumps(document))
+    capsys.readouterr()
+    assert main(["report", "--matrix", str(matrix), "--coloc", str(tmp_path / "t.json"), "-o",
+                 str(tmp_path / "r.html")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    errors = [line for line in err if line.startswith("error:")]
+    assert len(errors) == 1 and "t.json" in errors[0] and words in errors[0], err
+    assert "Traceback" not in "\n".join(err) and not (tmp_path / "r.html").exists()
 
 
 def test_report_refuses_deeply_nested_coloc_json(tmp_path, capsys):

@@ -8,7 +8,7 @@ import json
 import numpy as np
 import pytest
 import tifffile
-from pair_scenes import measured_matrix, pair_scene
+from pair_scenes import ANISOTROPIC, measured_matrix, pair_scene, series_matrix, time_series, write_stack
 from scipy import ndimage, stats
 
 from unmix.cli import main
@@ -16,7 +16,6 @@ from unmix.coloc import statistics as coloc
 from unmix.coloc.sums import Moments, Spectra
 from unmix.coloc.verdict import analyse_pair
 
-ANISOTROPIC = (2.5, 1.2, 1.2)  # PSF sigma in z, y, x (voxels): the axial blur is wider
 
 
 def _independent_stack(seed, shape=(12, 64, 64)):
@@ -139,18 +138,10 @@ def test_a_trend_with_depth_is_flagged():
     assert values[0] > 0.7 and values[-1] < 0.2
 
 
-def _write_stack(path, raw, axes="CZYX", names=("ch0", "ch1"), z_um=None):
-    metadata = {"axes": axes, "Channel": {"Name": list(names)}}
-    if z_um:
-        metadata["PhysicalSizeZ"] = z_um
-    tifffile.imwrite(path, np.round(raw).astype(np.uint16), ome=True, metadata=metadata)
-    return path
-
-
 def test_coloc_command_on_a_stack_with_ranges_and_masks(tmp_path, capsys):
     scene = pair_scene(41, r=0.0, peak_a=2000, ratio=0.3, leak=0.3, shape=(5, 64, 64), psf_sigma=ANISOTROPIC)
     measured_matrix(scene, 41).save(tmp_path / "m.json")
-    stack = _write_stack(tmp_path / "stack.ome.tif", scene.raw, z_um=0.5)
+    stack = write_stack(tmp_path / "stack.ome.tif", scene.raw, z_um=0.5)
     base = ["coloc", str(stack), "--matrix", str(tmp_path / "m.json"), "--labels", "A,B", "--rounds", "99"]
     assert main(base + ["--json", str(tmp_path / "all.json"), "--csv", str(tmp_path / "all.csv")]) == 0
     record = json.loads((tmp_path / "all.json").read_text())
@@ -179,7 +170,7 @@ def test_coloc_command_on_a_stack_with_ranges_and_masks(tmp_path, capsys):
 def test_stack_bad_input_and_warnings(tmp_path, capsys):
     scene = pair_scene(42, r=0.0, peak_a=1000, shape=(4, 48, 48), psf_sigma=ANISOTROPIC)
     measured_matrix(scene, 42).save(tmp_path / "m.json")
-    stack = _write_stack(tmp_path / "stack.ome.tif", scene.raw)
+    stack = write_stack(tmp_path / "stack.ome.tif", scene.raw)
     base = ["coloc", str(stack), "--matrix", str(tmp_path / "m.json"), "--labels", "A,B", "--rounds", "19"]
     for extra, words in ((["--planes", "2:9"], "--planes 2:9"), (["--plane", "7"], "--plane 7"),
                          (["--frames", "0:3"], "--frames 0:3"), (["--planes", "x"], "FIRST:LAST")):
@@ -209,45 +200,10 @@ def test_stack_bad_input_and_warnings(tmp_path, capsys):
     assert json.loads((tmp_path / "single.json").read_text())["dimensions"] == "2-D plane"
 
 
-def _time_series(seed, frames=4, bleach=0.0, photoconvert=0.0):
-    """(T, C, Z, Y, X) of 3 channels and 2 labels; A fades by `bleach` per frame; from frame 2 on, a part
-    `photoconvert` of A emits with another spectrum (the matrix no longer fits)."""
-    from pair_scenes import BACKGROUND_E, GAIN, OFFSET, READ_NOISE, structure
-
-    rng = np.random.default_rng(seed)
-    shape = (3, 64, 64)
-    matrix = np.array([[1.0, 0.05], [0.3, 1.0], [0.1, 0.4]])
-    s1, s2 = structure(rng, shape, ANISOTROPIC), structure(rng, shape, ANISOTROPIC)
-    data = []
-    for t in range(frames):
-        a = 2000 * (1 - bleach) ** t * s1
-        electrons = np.tensordot(matrix, np.stack([a, 800 * (0.5 * s1 + 0.5 * s2)]), axes=(1, 0))
-        if t >= 2 and photoconvert:
-            electrons += np.tensordot([0.0, 0.1, 1.0], photoconvert * a[None], axes=0)[:, 0]
-        data.append(GAIN * rng.poisson(electrons + BACKGROUND_E)
-                    + rng.normal(0, GAIN * READ_NOISE, electrons.shape) + OFFSET)
-    return np.stack(data), matrix
-
-
-def _series_matrix(matrix, path):
-    from unmix.matrix import BleedThroughMatrix
-    from pair_scenes import BACKGROUND_E, GAIN, OFFSET, READ_NOISE
-
-    covariance = np.stack([np.diag((0.003 * (matrix[:, k] != 1)) ** 2) for k in range(2)])
-    BleedThroughMatrix(kind="measured", channels=("c0", "c1", "c2"), labels=("A", "B"),
-                       primary={"A": "c0", "B": "c1"}, matrix=matrix, ci95_low=matrix - 0.006 * (matrix != 1),
-                       ci95_high=matrix + 0.006 * (matrix != 1), background=np.full(3, OFFSET + GAIN * BACKGROUND_E),
-                       background_source="dark", saturation=np.full(3, 65535.0),
-                       noise_model={"read_variance": [(GAIN * READ_NOISE) ** 2 + GAIN**2 * BACKGROUND_E] * 3,
-                                    "gain": [GAIN] * 3, "source": "controls"},
-                       column_covariance=covariance).save(path)
-    return path
-
-
 def test_time_series_verdict_per_frame_with_bleaching_and_fit_checks(tmp_path, capsys):
-    data, matrix = _time_series(51, frames=4, bleach=0.15, photoconvert=0.5)
-    matrix_path = _series_matrix(matrix, tmp_path / "m.json")
-    path = _write_stack(tmp_path / "series.ome.tif", data, axes="TCZYX", names=("c0", "c1", "c2"))
+    data, matrix = time_series(51, frames=4, bleach=0.15, photoconvert=0.5)
+    matrix_path = series_matrix(matrix, tmp_path / "m.json")
+    path = write_stack(tmp_path / "series.ome.tif", data, axes="TCZYX", names=("c0", "c1", "c2"))
     assert main(["coloc", str(path), "--matrix", str(matrix_path), "--labels", "A,B", "--rounds", "99", "--json",
                  str(tmp_path / "t.json")]) == 0
     document = json.loads((tmp_path / "t.json").read_text())
@@ -260,8 +216,8 @@ def test_time_series_verdict_per_frame_with_bleaching_and_fit_checks(tmp_path, c
     out = capsys.readouterr().out
     assert "bleaching" in out and "no longer fits" in out
     # Without those faults nothing is flagged; --frames picks time points.
-    clean, _ = _time_series(52, frames=3)
-    path = _write_stack(tmp_path / "clean.ome.tif", clean, axes="TCZYX", names=("c0", "c1", "c2"))
+    clean, _ = time_series(52, frames=3)
+    path = write_stack(tmp_path / "clean.ome.tif", clean, axes="TCZYX", names=("c0", "c1", "c2"))
     assert main(["coloc", str(path), "--matrix", str(matrix_path), "--labels", "A,B", "--rounds", "99",
                  "--frames", "1:2", "--json", str(tmp_path / "c.json")]) == 0
     document = json.loads((tmp_path / "c.json").read_text())

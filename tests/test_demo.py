@@ -76,6 +76,32 @@ def test_demo_ships_three_control_fields_per_label_and_a_z_stack(demo):
     assert np.all(values.reshape(3, 8, -1).max(axis=2) > 0)
 
 
+def _stack_truth(demo, pair):
+    """Pearson r (scipy.stats.pearsonr) over the z-stack's voxels of the pair's simulated abundances, and
+    of the noise-free primary channels the true matrix makes of them: what bleed-through alone does."""
+    from scipy.stats import pearsonr
+
+    truth = json.loads(demo["truth"].read_text())
+    abundances = read_image(Path(demo["sample_stack"]).with_name("sample_stack_truth.ome.tif")).data
+    abundances = abundances.astype(float).reshape(len(truth["labels"]), -1)
+    channels = np.asarray(truth["matrix"]) @ abundances
+    ka, kb = (truth["labels"].index(label) for label in pair)
+    ca, cb = (truth["channels"].index(truth["primary"][label]) for label in pair)
+    return pearsonr(abundances[ka], abundances[kb])[0], pearsonr(channels[ca], channels[cb])[0]
+
+
+def test_stack_truth_gives_the_verdicts_the_demo_pins(demo):
+    # The outside reference for the demo's 3-D verdicts is the scenario's simulated truth: the
+    # independent pair does not overlap (|r| < 0.1) while bleed-through alone makes its channels
+    # correlate (bleed-through-only); the overlapping pair overlaps (r >= 0.1) and bleed-through
+    # raises its channels' r above the labels' own by more than the after-r's 95 % interval is wide
+    # in the demo (about 0.006), so the raw channels overstate it (inflated).
+    labels, channels = _stack_truth(demo, ("Fernlight", "Emberin"))
+    assert abs(labels) < 0.1 and channels > 0.3
+    labels, channels = _stack_truth(demo, ("Pondpetal", "Emberin"))
+    assert labels >= 0.1 and channels - labels > 0.01
+
+
 def test_demo_runs_twice_in_a_row_into_one_folder(tmp_path):
     # A rerun replaces the demo's own results and leaves other files alone (a real process, as a
     # user runs it).
@@ -110,6 +136,14 @@ def test_run_demo_writes_results(tmp_path, capsys):
     # The demo's pairs: the independent one is flagged, the overlapping one is not.
     assert result["coloc"][("Fernlight", "Emberin")] == "bleed-through-only"
     assert result["coloc"][("Pondpetal", "Emberin")] == "persists"
+    # The z-stack, judged in 3-D over its voxels. Reference: the scenario's simulated truth
+    # (test_stack_truth_gives_the_verdicts_the_demo_pins): Fernlight and Emberin independent,
+    # Pondpetal and Emberin overlapping with their channels' r raised by bleed-through.
+    assert result["coloc_stack"][("Fernlight", "Emberin")] == "bleed-through-only"
+    assert result["coloc_stack"][("Pondpetal", "Emberin")] == "inflated"
+    stack = json.loads((tmp_path / "out" / "coloc_stack.json").read_text())["results"]
+    assert all(r["planes"] == [0, 7] and len(r["plane_profile"]) == 8 and r["z_step_um"] == pytest.approx(0.3)
+               for r in stack)
     assert result["report"].exists()
     # Run again into the same folder: the demo replaces its own results.
     assert run_demo(tmp_path / "out")["unmixed"].exists()

@@ -127,8 +127,9 @@ def test_demo_report_in_a_real_browser(demo_report, tmp_path):
     assert requests == set()
     sizes = json.loads(re.search(r'data-sizes="([^"]*)"', dom).group(1).replace("&quot;", '"'))
     expected = demo_report.read_text(encoding="utf-8").count("<img")
-    # the sample thumbnails, two histograms, both matrices, measured vs predicted, the spectra
-    assert expected == 6 and len(sizes) == expected
+    # the sample thumbnails, the plane's two histograms, the stack's two depth profiles, both matrices,
+    # measured vs predicted, the spectra
+    assert expected == 8 and len(sizes) == expected
     assert all(not s.startswith("0x") and not s.endswith("x0") for s in sizes), sizes
 
 
@@ -136,7 +137,8 @@ def test_first_screen_of_the_demo_report_shows_every_verdict(demo_report, tmp_pa
     # In a 1400 x 1000 window, each pair's verdict (symbol, words and code) lies wholly on the
     # first screen, as the browser lays it out (bounding boxes from the page itself).
     chromium = _chromium()
-    records = json.loads((demo_report.parent / "coloc.json").read_text())["results"]
+    records = [record for name in ("coloc.json", "coloc_stack.json")  # the plane's pairs, then the z-stack's
+               for record in json.loads((demo_report.parent / name).read_text())["results"]]
     dom = _probe(chromium, demo_report, tmp_path, (
         "const rows = [...document.querySelectorAll('table.answer tbody tr')].map(row => {"
         " const badge = row.querySelector('.badge'), code = row.querySelector('code.verdict');"
@@ -147,7 +149,7 @@ def test_first_screen_of_the_demo_report_shows_every_verdict(demo_report, tmp_pa
     rows, width, _ = _attribute(dom, "data-verdicts")
     height = 1000  # the screenshot's viewport; headless --dump-dom reports a shorter inner window
     assert width == 1400  # the layout's width, on which the positions depend
-    assert len(rows) == len(records) == 2
+    assert len(rows) == len(records) == 4
     for (badge, code, pair, bottom), record in zip(rows, records):
         look = VERDICT_LOOK[record["verdict"]]
         assert code == record["verdict"] and badge == f"{look.symbol} {look.heading}"
@@ -259,3 +261,80 @@ def test_report_refuses_coloc_results_of_another_matrix(tmp_path, capsys):
         assert not (tmp_path / "r.html").exists()
     assert main(["report", "--matrix", str(tmp_path / "m.json"), "--coloc", str(tmp_path / "same.json"),
                  "-o", str(tmp_path / "r.html"), "--quiet"]) == 0
+
+
+def _stack_files(tmp_path):
+    """A z-stack of two labels (5 planes, 0.4 um apart) as an OME-TIFF, its matrix, and its coloc results
+    as `unmix coloc --json` writes them."""
+    from pair_scenes import ANISOTROPIC, measured_matrix, pair_scene, write_stack
+
+    scene = pair_scene(71, r=0.4, peak_a=1500, leak=0.3, shape=(5, 48, 48), psf_sigma=ANISOTROPIC)
+    measured_matrix(scene, 71).save(tmp_path / "m.json")
+    write_stack(tmp_path / "stack.ome.tif", scene.raw, z_um=0.4)
+    assert main(["coloc", str(tmp_path / "stack.ome.tif"), "--matrix", str(tmp_path / "m.json"), "--labels", "A,B",
+                 "--rounds", "49", "--json", str(tmp_path / "stack.json"), "--quiet"]) == 0
+    return tmp_path / "m.json", tmp_path / "stack.json"
+
+
+def _report(tmp_path, matrix, *coloc) -> str:
+    argv = ["report", "--matrix", str(matrix), "-o", str(tmp_path / "r.html"), "--quiet"]
+    for path in coloc:
+        argv += ["--coloc", str(path)]
+    assert main(argv) == 0
+    return (tmp_path / "r.html").read_text(encoding="utf-8")
+
+
+def test_a_stack_result_shows_its_depth_profile_and_that_it_is_3d(tmp_path):
+    # The number of planes and the Z step shown are the file's (tifffile wrote them); the figure is
+    # the depth profile; the caution that projections inflate co-occurrence (Bolte & Cordelieres
+    # 2006) stands with the result and among the cautions.
+    from unmix.report.html import PROJECTION_CAUTION
+
+    matrix, stack = _stack_files(tmp_path)
+    text = _report(tmp_path, matrix, stack)
+    detail = text[text.index(">Each pair in detail</h2>"):text.index(">Bleed-through matrix</h2>")]
+    assert "This verdict is over voxels, in 3-D: 5 planes (planes 0 to 4 of stack.ome.tif), Z step 0.4 µm, " \
+           f"{5 * 48 * 48:,} voxels; never a projection." in detail
+    assert detail.count("<img alt='r by depth, A and B'") == 1 and "Depth trend of the corrected r: " in detail
+    caution = html.escape(PROJECTION_CAUTION, quote=True)
+    assert caution in detail and caution in text[text.index(">Cautions</h2>"):]
+    assert "Bolte &amp; Cordelières 2006, J. Microsc. 224:213" in caution
+    answer = text[text.index(">The answer</h2>"):text.index(">QC problems</h2>")]
+    assert "stack.ome.tif, 3-D, 5 planes" in answer
+    assert ">Time series</h2>" not in text
+
+
+def test_a_time_series_gets_its_own_section_with_the_checks_in_words(tmp_path):
+    # Simulated truth: label A fades by 15 % per time point (1 - 0.85^3 = 39 % over four) and from the
+    # third time point part of it emits with another spectrum (the matrix stops fitting).
+    from pair_scenes import series_matrix, time_series, write_stack
+
+    data, truth = time_series(51, frames=4, bleach=0.15, photoconvert=0.5)
+    matrix = series_matrix(truth, tmp_path / "m.json")
+    movie = write_stack(tmp_path / "movie.ome.tif", data, axes="TCZYX", names=("c0", "c1", "c2"))
+    assert main(["coloc", str(movie), "--matrix", str(matrix), "--labels", "A,B", "--rounds", "49", "--json",
+                 str(tmp_path / "t.json"), "--quiet"]) == 0
+    document = json.loads((tmp_path / "t.json").read_text())
+    text = _report(tmp_path, matrix, tmp_path / "t.json")
+    section = text[text.index(">Time series</h2>"):text.index(">Bleed-through matrix</h2>")]
+    assert section.count("<img alt='A and B over time'") == 1
+    counts = document["time_summaries"][0]["verdicts"]
+    for verdict, count in counts.items():
+        assert f"<code class='verdict'>{verdict}</code> at {count} of 4" in section
+    fall = float(re.search(r"A loses (\d+) % of its signal from the first to the last time point", section).group(1))
+    assert abs(fall - 100 * (1 - 0.85**3)) <= 3
+    assert "the matrix no longer fits" in section and "B changes by" in section
+    assert len(re.findall(r"<tr><td>\d</td><td><code class='verdict'>", section)) == 4  # one row per time point
+    # The answer gives the series one row (its verdicts counted), not one per time point.
+    answer = text[text.index(">The answer</h2>"):text.index(">QC problems</h2>")]
+    assert answer.count("<tr>") == 2 and "movie.ome.tif, 4 time points" in answer
+    assert "Flagged: A loses" in answer and ">Each pair in detail</h2>" not in text
+
+
+def test_a_plain_result_has_no_stack_or_time_parts():
+    from unmix.report.html import PROJECTION_CAUTION
+
+    matrix = _matrix()
+    text = build_report(matrix, coloc_records=[_record(matrix)])
+    assert "r by depth" not in text and "over voxels" not in text and ">Time series</h2>" not in text
+    assert html.escape(PROJECTION_CAUTION, quote=True) not in text and "over time" not in text

@@ -88,7 +88,8 @@ def read_coloc(matrix: Path, path: Path):
     from unmix.matrix import load_matrix
     from unmix.report.html import build_report, load_coloc_results
 
-    return build_report(load_matrix(matrix), coloc_records=load_coloc_results(path))
+    records, summaries = load_coloc_results(path)
+    return build_report(load_matrix(matrix), coloc_records=records, time_summaries=summaries)
 
 
 def main():

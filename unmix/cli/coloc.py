@@ -270,6 +270,7 @@ def run_coloc(args) -> int:
 def _run(files, args) -> int:
     import json
 
+    from ..coloc.records import result_record
     from ..coloc.timelapse import frame_signals, time_summary
     from ..coloc.verdict import judge_pair, prepare_image, warn_about_matrix
     from ..io.atomic import write_text_atomic
@@ -367,11 +368,10 @@ def _run(files, args) -> int:
 
     records = []
     for series, t, object_id, result, histogram in results:
-        record = result.to_dict()
-        record.update({"image": str(series.path), "object": object_id, "matrix_sha256": matrix.sha256(),
-                       "frame": t if series.has_time else None,
-                       "planes": None if series.data.shape[2] == 1 else [series.planes.start, series.planes.stop - 1],
-                       "plane_profile": record.pop("planes")})
+        record = result_record(result, image=series.path, matrix_sha256=matrix.sha256(), object_id=object_id,
+                               frame=t if series.has_time else None,
+                               planes=None if series.data.shape[2] == 1 else (series.planes.start,
+                                                                              series.planes.stop - 1))
         if histogram is not None:
             record["histogram"] = str(histogram)
         records.append(record)

@@ -37,7 +37,7 @@ def run_report(args) -> int:
         raise InputError(f"-o {args.output}: the report is HTML; give a name ending in .html")
     matrix = load_matrix(args.matrix)
     predicted = load_matrix(args.predicted) if args.predicted else None
-    records = [record for path in args.coloc or [] for record in load_coloc_results(path)]
+    files = [load_coloc_results(path) for path in args.coloc or []]
     description = None
     if args.description:
         from ..optics.description import load_description
@@ -47,7 +47,9 @@ def run_report(args) -> int:
         if not Path(path).exists():
             raise InputError(f"--sample {path}: no such file; check the path")
     write_report(output, build_report(matrix, matrix_path=args.matrix, predicted=predicted,
-                                      predicted_path=args.predicted, coloc_records=records,
+                                      predicted_path=args.predicted,
+                                      coloc_records=[record for file in files for record in file.records],
+                                      time_summaries=[summary for file in files for summary in file.time_summaries],
                                       samples=args.sample or [], description=description,
                                       description_path=args.description))
     if not args.quiet:

@@ -121,6 +121,7 @@ class PairResult:
     dimensions: str = "2-D plane"
     planes: list | None = None
     depth_trend: dict | None = None
+    z_step_um: float | None = None  # spacing of a stack's planes, when its metadata give it
 
     @property
     def inflation(self) -> float | None:
@@ -146,6 +147,7 @@ class PairResult:
             "flat_field": self.flat_field, "noise_model": self.noise_source,
             "matrix_uncertainty": self.matrix_uncertainty, "min_r": self.min_r, "alpha": self.alpha,
             "dimensions": self.dimensions, "planes": self.planes, "depth_trend": self.depth_trend,
+            "z_step_um": self.z_step_um,
         }
 
 
@@ -534,7 +536,7 @@ def judge_pair(source: ImageSource, pair: tuple[str, str], *, mask=None, rounds:
         verdict=verdict, reason=reason, p_bounds=p_bounds, saturated_pixels=saturated, pixels=channels.n,
         flat_field=source.flat_field, noise_source=source.noise.source,
         matrix_uncertainty=source.matrix_uncertainty, min_r=min_r, alpha=alpha, dimensions=dimensions,
-        planes=profile, depth_trend=trend)
+        planes=profile, depth_trend=trend, z_step_um=z_spacing if n_planes > 1 and z_spacing else None)
 
 
 def _depth_profile(before_planes, channel_planes, after_noise, draws, model_sd, z_spacing):

@@ -6,7 +6,9 @@ The page leads with the answer and ends with the paperwork:
    plugin, :mod:`.style`), the corrected after-r with its 95 % interval and one sentence;
 2. QC problems, or that none was found;
 3. the sample, raw beside unmixed, as thumbnails;
-4. each pair in detail: coefficients by family, footnotes, histograms;
+4. each pair in detail: coefficients by family, footnotes, histograms; for a z-stack, that the verdict is
+   over voxels in 3-D, its planes and Z step, and each plane's r; for a time series, the verdicts per
+   time point, the r over time and the bleaching and unmixing-fit checks;
 5. the matrix with its QC table (problems flagged in their rows), measured versus predicted and
    the spectra when a description is given;
 6. cautions, inputs with their checksums, references.
@@ -47,6 +49,11 @@ CAUTIONS = (
     "Keep the raw data; unmix never modifies its inputs.",
     "For the hardware side (lasers, arc lamps), follow your institution's safety rules.",
 )
+# Shown wherever results of z-stacks are (their detail, and the cautions).
+PROJECTION_CAUTION = (
+    "Never measure a projection of a stack: a maximum or sum projection lays several depths on top of each other "
+    "and makes labels that never meet co-occur (Bolte & Cordelières 2006, J. Microsc. 224:213). Stacks here are "
+    "measured in 3-D, over their voxels.")
 REFERENCES = (
     ("E. M. M. Manders, F. J. Verbeek & J. A. Aten (1993), J. Microsc. 169:375", "https://doi.org/10.1111/j.1365-2818.1993.tb03313.x"),
     ("S. V. Costes et al. (2004), Biophys. J. 86:3993", "https://doi.org/10.1529/biophysj.103.038422"),
@@ -103,6 +110,7 @@ table.answer td, table.answer th { vertical-align: middle; text-align: left; }
 table.answer td:nth-child(3), table.answer td:nth-child(4) { white-space: nowrap; }
 code.verdict { white-space: nowrap; }
 table.inputs td, table.inputs th { text-align: left; }
+table.series td:last-child, table.series th:last-child { text-align: left; }
 .problems { background: #fff4e5; border-left: 4px solid #D55E00; padding: .4em 1em; }
 .fine { background: #eef7ee; border-left: 4px solid #009E73; padding: .4em 1em; }
 .caution { background: #fff7e0; border-left: 4px solid #e0a000; padding: .5em 1em; }
@@ -152,8 +160,9 @@ def verdict_badge(verdict: str, separator: str = " ") -> str:
             f"{separator}<code class='verdict'>{_e(verdict)}</code>")
 
 
-def load_coloc_results(path) -> list[dict]:
-    """The checked records of a coloc JSON file (see :func:`unmix.coloc.records.load_records`)."""
+def load_coloc_results(path):
+    """The checked records and summaries over time of a coloc JSON file, a
+    :class:`~unmix.coloc.records.ColocFile` (see :func:`unmix.coloc.records.load_records`)."""
     from ..coloc.records import load_records
 
     return load_records(path)
@@ -181,8 +190,8 @@ def check_same_matrix(records, matrix: BleedThroughMatrix, matrix_path=None) -> 
 
 
 def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: BleedThroughMatrix | None = None,
-                 predicted_path=None, coloc_records=(), samples=(), description=None, description_path=None,
-                 title: str = "Bleed-through and colocalization report") -> str:
+                 predicted_path=None, coloc_records=(), time_summaries=(), samples=(), description=None,
+                 description_path=None, title: str = "Bleed-through and colocalization report") -> str:
     """The report as one HTML string.
 
     Parameters
@@ -193,6 +202,9 @@ def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: Ble
         A predicted matrix to compare the measured one with.
     coloc_records : list of dict
         Records of ``unmix coloc --json``; each must have been made with `matrix`.
+    time_summaries : list of dict
+        The summaries over time of the same files (``time_summaries``): the records of the time
+        points each covers are shown together, as one series.
     samples : list of paths
         Raw images to show raw beside unmixed (the middle plane of a stack).
     description : Description, optional
@@ -202,6 +214,7 @@ def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: Ble
 
     coloc_records = list(coloc_records)
     check_same_matrix(coloc_records, matrix, matrix_path)
+    items = _series_grouped(coloc_records, list(time_summaries))
     comparison = None
     if predicted is not None:
         from ..optics.comparison import compare
@@ -213,16 +226,21 @@ def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: Ble
     software = provenance.software()
     parts.append(f"<p class='small'>Made {_e(provenance.utc_now())} by unmix {_e(software['unmix'])}. Inputs, "
                  "checksums and references are at the end.</p>")
-    parts.append(_answer(matrix, coloc_records, comparison))
-    parts.append(_problems(matrix, coloc_records))
+    parts.append(_answer(matrix, items, comparison))
+    parts.append(_problems(matrix, coloc_records, list(time_summaries)))
     if samples:
         parts.append("<h2>The sample, raw and unmixed</h2>" + "".join(_sample(path, matrix) for path in samples))
-    if coloc_records:
+    single = [item for item in items if isinstance(item, dict)]
+    if single:
         parts.append("<h2>Each pair in detail</h2>")
         parts.append("<p>Verdicts, on Pearson r (overlap = r at least the minimum and the randomisation p below "
                      "alpha):</p><ul>" + "".join(f"<li>{verdict_badge(v)}: {_e(text)}</li>"
                                                   for v, text in VERDICTS.items()) + "</ul>")
-        parts += [_coloc_section(record) for record in coloc_records]
+        parts += [_coloc_section(record) for record in single]
+    series = [item for item in items if isinstance(item, tuple)]
+    if series:
+        parts.append("<h2>Time series</h2>")
+        parts += [_time_section(summary, records) for summary, records in series]
     parts.append(_matrix_section(matrix))
     if comparison is not None:
         parts.append(_comparison_section(matrix, predicted, comparison))
@@ -232,8 +250,10 @@ def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: Ble
         parts.append("<h2>Spectra and bands</h2>" + (f"<p class='small'>From {_e(description_path)}.</p>"
                                                     if description_path else "")
                      + f"<img alt='label spectra and channel bands' src='{_png(spectra_figure(description))}'>")
+    stacks = any(record.get("plane_profile") for record in coloc_records)
     parts.append("<h2>Cautions</h2><div class='caution'><ul>"
-                 + "".join(f"<li>{_e(c)}</li>" for c in CAUTIONS) + "</ul></div>")
+                 + "".join(f"<li>{_e(c)}</li>" for c in CAUTIONS + ((PROJECTION_CAUTION,) if stacks else ()))
+                 + "</ul></div>")
     parts.append(_inputs(matrix, matrix_path, predicted_path, description_path, coloc_records, samples, software))
     parts.append("<h2>References</h2><ul>" + "".join(
         f"<li>{_e(text)}" + (f" (<a href='{_e(url)}'>link</a>)" if url else "") + "</li>" for text, url in REFERENCES)
@@ -244,10 +264,39 @@ def build_report(matrix: BleedThroughMatrix, *, matrix_path=None, predicted: Ble
 # --- the answer and the problems ------------------------------------------------------
 
 def _where(record: dict) -> str:
-    where = Path(str(record["image"])).name if record.get("image") else ""
+    """Where a result (or a summary over time) was measured: image, object, time point, 3-D."""
+    parts = [Path(str(record["image"])).name] if record.get("image") else []
     if record.get("object") is not None:
-        where += f", object {record['object']}"
-    return where
+        parts.append(f"object {record['object']}")
+    if record.get("frame") is not None:
+        parts.append(f"time point {record['frame']}")
+    if record.get("plane_profile"):
+        parts.append(f"3-D, {len(record['plane_profile'])} planes")
+    return ", ".join(parts)
+
+
+def _series_key(item: dict) -> tuple:
+    return item.get("source"), item.get("image"), tuple(item["pair"]), item.get("object")
+
+
+def _series_grouped(records: list, summaries: list) -> list:
+    """The records in order, as dicts, except those of a time series: each summary over time stands,
+    as (summary, its records), where its first time point was; summaries without records come last."""
+    entries = [(summary, []) for summary in summaries]
+    by_key: dict = {}
+    for entry in entries:
+        by_key.setdefault(_series_key(entry[0]), entry)
+    items, placed = [], set()
+    for record in records:
+        entry = by_key.get(_series_key(record))
+        if entry is None or record.get("frame") not in entry[0]["frames"]:
+            items.append(record)
+            continue
+        entry[1].append(record)
+        if id(entry) not in placed:
+            placed.add(id(entry))
+            items.append(entry)
+    return items + [entry for entry in entries if id(entry) not in placed]
 
 
 def _after_r(record: dict) -> str:
@@ -259,12 +308,58 @@ def _after_r(record: dict) -> str:
                           if interval else " <span class='small'>(no interval)</span>")
 
 
-def _answer(matrix: BleedThroughMatrix, records: list, comparison) -> str:
+def _span(values) -> str:
+    """The range of some numbers (None for undefined ones) as text."""
+    values = [v for v in values if v is not None]
+    if not values:
+        return "undefined"
+    low, high = min(values), max(values)
+    return fixed(low, 3) if low == high else f"{fixed(low, 3)} to {fixed(high, 3)}"
+
+
+def _series_where(summary: dict, records: list) -> str:
+    where = _where({key: summary.get(key) for key in ("image", "object")})
+    planes = {len(r["plane_profile"]) for r in records if r.get("plane_profile")}
+    return ", ".join(filter(None, [where, f"{len(summary['frames'])} time points"]
+                            + ([f"each 3-D, {max(planes)} planes"] if planes else [])))
+
+
+def _series_flags(summary: dict) -> list[str]:
+    """The bleaching and unmixing-fit checks of a series in words, flagged ones first."""
+    limit = summary["bleach_limit"]
+    flagged, fine = [], []
+    for label, bleaching in summary["bleaching"].items():
+        fall = bleaching.get("fall")
+        if bleaching["flagged"]:
+            flagged.append(f"{label} loses {100 * fall:.0f} % of its signal from the first to the last time point "
+                           f"(more than {100 * limit:.0f} %): bleaching or drift; the corrected r resolves less as "
+                           "the signal falls" if fall is not None else f"{label}: bleaching flagged")
+        elif fall is not None:
+            fine.append(f"{label} changes by {-100 * fall:+.0f} % over the series (within the {100 * limit:.0f} % "
+                        "bleaching limit)")
+    residual = summary["residual"]
+    ratios = [r for r in residual["ratio"] if r is not None]
+    if residual["flagged"]:
+        flagged.append(residual["note"] or "the unmixing residual grows over time: the matrix no longer fits")
+    elif ratios:
+        fine.append(f"the unmixing residual stays at {_span(ratios)} times what detector noise leaves: the matrix "
+                    "fits throughout")
+    elif residual["note"]:
+        fine.append(residual["note"])
+    return [f"⚠ {text}" for text in flagged] + fine
+
+
+def _answer(matrix: BleedThroughMatrix, items: list, comparison) -> str:
     parts = ["<h2>The answer</h2>"]
-    if records:
-        several_images = len({_where(r) for r in records}) > 1
+    if items:
+        several_images = len({_where(i) if isinstance(i, dict) else _series_key(i[0]) for i in items}) > 1 or any(
+            isinstance(i, tuple) or i.get("plane_profile") for i in items)
         rows = []
-        for record in records:
+        for item in items:
+            if isinstance(item, tuple):
+                rows.append(_series_answer(*item))
+                continue
+            record = item
             pair = f"{_e(record['pair'][0])} and {_e(record['pair'][1])}"
             before = record["before"].get("pearson")
             rows.append([verdict_badge(record["verdict"], "<br>"),
@@ -306,10 +401,33 @@ def _matrix_headline(matrix: BleedThroughMatrix) -> str:
             f"{penalty[worst]:.2f} ({matrix.labels[worst]}).")
 
 
-def _problems(matrix: BleedThroughMatrix, records: list) -> str:
+def _series_answer(summary: dict, records: list) -> list:
+    """The answer's row for a time series: its verdicts counted, the range of its r's, its checks."""
+    n = len(summary["frames"])
+    counts = sorted(summary["verdicts"].items(), key=lambda item: -item[1])
+    badges = "<br>".join(f"{verdict_badge(v, ' ')} <span class='small'>{count} of {n}</span>" for v, count in counts)
+    pair = f"{_e(summary['pair'][0])} and {_e(summary['pair'][1])}"
+    flagged = [f"{label} loses {100 * b['fall']:.0f} % of its signal" if b.get("fall") is not None
+               else f"{label} bleaches" for label, b in summary["bleaching"].items() if b["flagged"]]
+    if summary["residual"]["flagged"]:
+        flagged.append("the unmixing residual grows: the matrix no longer fits")
+    checks = f"Flagged: {'; '.join(flagged)}." if flagged else "No check flagged."
+    meaning = _e(f"A verdict per time point (details under Time series). {checks}")
+    return [badges or "-", pair + f"<br><span class='small'>{_e(_series_where(summary, records))}</span>",
+            _span([r["before"].get("pearson") for r in records]),
+            _span(summary["pearson_noise_corrected"]) + " <span class='small'>(per time point)</span>", meaning]
+
+
+def _problems(matrix: BleedThroughMatrix, records: list, summaries: list) -> str:
     problems = [*(matrix.qc.get("flags", []) if isinstance(matrix.qc, dict) else []), *matrix_warnings(matrix)]
+    for summary in summaries:
+        where = _where({key: summary.get(key) for key in ("image", "object")})
+        problems += [f"{summary['pair'][0]} and {summary['pair'][1]}" + (f" ({where})" if where else "") + f": {note}"
+                     for note in summary.get("notes", [])]
     for record in records:
-        notes = [n for n in (record["before"].get("note"), record["after"].get("note")) if n]
+        trend = record.get("depth_trend") or {}
+        notes = [n for n in (record["before"].get("note"), record["after"].get("note"),
+                             trend.get("note") if trend.get("flagged") else None) if n]
         for note in notes:
             problems.append(f"{record['pair'][0]} and {record['pair'][1]}"
                             + (f" ({_where(record)})" if _where(record) else "") + f": {note}")
@@ -390,8 +508,10 @@ def _coloc_section(record: dict) -> str:
     methods = {record[s].get("threshold_method", "") for s in ("before", "after")} - {""}
     rows.append([f"thresholds (A, B; {_e(' / '.join(sorted(methods)))})", *thresholds])
     rows.append(["pixels", _e(record["before"].get("n_pixels", "")), _e(record["after"].get("n_pixels", ""))])
-    text = [f"<h3>{_e(heading)}</h3>", f"<p>{verdict_badge(record['verdict'])} {_e(VERDICTS[record['verdict']])}.</p>",
-            _table(["coefficient", "before (primary channels)", "after (least-squares abundances)"], rows)]
+    text = [f"<h3>{_e(heading)}</h3>", f"<p>{verdict_badge(record['verdict'])} {_e(VERDICTS[record['verdict']])}.</p>"]
+    if record.get("plane_profile"):
+        text.append(_stack_part(record))
+    text.append(_table(["coefficient", "before (primary channels)", "after (least-squares abundances)"], rows))
     if notes:
         text.append("<ol class='small'>" + "".join(f"<li>{_e(FOOTNOTES[name])}</li>" for name in notes) + "</ol>")
     after = record["after"]
@@ -422,6 +542,73 @@ def _coloc_section(record: dict) -> str:
         uri = _png_file(Path(histogram))
         if uri:
             text.append(f"<img alt='2-D histograms of {_e(pair[0])} and {_e(pair[1])}' src='{uri}'>")
+    return "\n".join(text)
+
+
+def _stack_part(record: dict) -> str:
+    """A z-stack's verdict: over which voxels, each plane's r and the trend with depth."""
+    from .plots import depth_profile_figure
+
+    profile = record["plane_profile"]
+    first, last = record.get("planes") or (0, len(profile) - 1)
+    step = record.get("z_step_um")
+    voxels = record["after"].get("n_pixels") or record.get("pixels")
+    where = Path(str(record["image"])).name if record.get("image") else "the stack"
+    words = (f"This verdict is over voxels, in 3-D: {len(profile)} planes (planes {first} to {last} of {where}), "
+             + (f"Z step {step:g} µm" if step else "Z step not in the image's metadata (depths in planes)")
+             + (f", {voxels:,} voxels" if isinstance(voxels, int) else "") + "; never a projection.")
+    trend = record.get("depth_trend") or {}
+    slope = trend.get("slope_per_plane")
+    if slope is None:
+        depth = f"Depth trend of the corrected r: none ({trend.get('note') or 'not measured'})."
+    else:
+        interval = trend.get("interval")
+        per_um = trend.get("slope_per_um")
+        depth = (f"Depth trend of the corrected r: {fixed(slope, 4)} per plane"
+                 + (f" ({fixed(per_um, 4)} per µm)" if per_um is not None else "")
+                 + (f", 95 % interval {fixed(interval[0], 4)} to {fixed(interval[1], 4)}" if interval else "")
+                 + (f": flagged, {trend['note']}." if trend.get("flagged") else
+                    ": not flagged (a trend is flagged when its interval excludes 0 and it changes r by 0.1 or more "
+                    "over the stack)."))
+    figure = depth_profile_figure(record)
+    return (f"<p><b>{_e(words)}</b></p><p class='caution small'>{_e(PROJECTION_CAUTION)}</p>"
+            f"<img alt='r by depth, {_e(record['pair'][0])} and {_e(record['pair'][1])}' src='{_png(figure)}'>"
+            f"<p>{_e(depth)}</p>")
+
+
+# --- time series ------------------------------------------------------------------------------
+
+def _time_section(summary: dict, records: list) -> str:
+    """A time series: its verdicts counted, the r and the signals over time, the checks in words, and
+    the verdict of each time point."""
+    from .plots import time_figure
+
+    pair = summary["pair"]
+    n = len(summary["frames"])
+    counts = sorted(summary["verdicts"].items(), key=lambda item: -item[1])
+    text = [f"<h3>{_e(pair[0])} and {_e(pair[1])} over time, {_e(_series_where(summary, records))}</h3>",
+            "<p>Verdicts per time point: " + ", ".join(f"{verdict_badge(v)} at {count} of {n}" for v, count in counts)
+            + ".</p>"]
+    if any(r.get("plane_profile") for r in records):
+        text.append(f"<p class='small'>Each time point is judged in 3-D, over its voxels. {_e(PROJECTION_CAUTION)}</p>")
+    text.append(f"<img alt='{_e(pair[0])} and {_e(pair[1])} over time' src='{_png(time_figure(summary))}'>")
+    text.append("<ul>" + "".join(f"<li>{_e(line)}</li>" for line in _series_flags(summary)) + "</ul>")
+    by_frame = {r["frame"]: r for r in records}
+    rows = []
+    for index, frame in enumerate(summary["frames"]):
+        record = by_frame.get(frame)
+        corrected, interval = summary["pearson_noise_corrected"][index], summary["intervals"][index]
+        after = "undefined" if corrected is None else fixed(corrected, 3) + (
+            f" [{fixed(interval[0], 3)}, {fixed(interval[1], 3)}]" if interval else "")
+        if record is None:
+            rows.append([_e(frame), "-", "-", after, ""])
+            continue
+        before = record["before"].get("pearson")
+        rows.append([_e(frame), f"<code class='verdict'>{_e(record['verdict'])}</code>",
+                     "undefined" if before is None else fixed(before, 3), after,
+                     f"<span class='small'>{_e(record.get('reason') or '')}</span>"])
+    text.append(_table(["time point", "verdict", "r before", "r after, noise-corrected [95 %]", "why"], rows,
+                       "series"))
     return "\n".join(text)
 
 

@@ -294,6 +294,8 @@ def depth_profile_figure(record: dict):
     """Each plane's before-r and noise-corrected after-r (with its 95 % interval) of a z-stack result,
     and the fitted depth trend."""
     plt = _pyplot()
+    from matplotlib.ticker import MaxNLocator
+
     profile = record.get("plane_profile") or []
     figure, axis = plt.subplots(figsize=(6.4, 3.4), layout="constrained")
     first = (record.get("planes") or [0])[0]
@@ -312,7 +314,9 @@ def depth_profile_figure(record: dict):
         centre = np.nanmean(np.asarray(corrected)[keep])
         axis.plot(x, centre + trend["slope_per_plane"] * (x - x[keep].mean()), color="#444444", lw=1,
                   label="depth trend" + (" (flagged)" if trend.get("flagged") else ""))
-    axis.axhline(record.get("min_r", 0.1), color="#999999", lw=0.8, ls=":", label="smallest r that counts")
+    if record.get("min_r") is not None:
+        axis.axhline(record["min_r"], color="#999999", lw=0.8, ls=":", label="smallest r that counts")
+    axis.xaxis.set_major_locator(MaxNLocator(integer=True))
     axis.set_xlabel("plane")
     axis.set_ylabel("Pearson r")
     axis.set_title(plain(f"{record['pair'][0]} and {record['pair'][1]} by depth: {record['verdict']}"), fontsize=10)
@@ -324,6 +328,8 @@ def time_figure(summary: dict):
     """A time series: the corrected after-r per time point (with its interval) and each label's mean
     signal relative to the first time point (bleaching or drift)."""
     plt = _pyplot()
+    from matplotlib.ticker import MaxNLocator
+
     figure, (top, bottom) = plt.subplots(2, 1, figsize=(6.4, 5.0), sharex=True, layout="constrained")
     frames = summary["frames"]
     corrected = [np.nan if r is None else r for r in summary["pearson_noise_corrected"]]
@@ -340,6 +346,7 @@ def time_figure(summary: dict):
         bottom.plot(frames, relative, "o-", color=colour,
                     label=plain(label) + (" (flagged)" if bleaching["flagged"] else ""))
     bottom.axhline(1 - summary.get("bleach_limit", 0.2), color="#999999", lw=0.8, ls=":", label="bleaching limit")
+    bottom.xaxis.set_major_locator(MaxNLocator(integer=True))
     bottom.set_xlabel("time point")
     bottom.set_ylabel("signal / first")
     bottom.legend(fontsize=7, loc="best")
