@@ -11,6 +11,9 @@ CHANNEL_NAMES = "channel_names"
 # Layers that are the channels of one multichannel image carry its name under this key (and their
 # own channel's name under CHANNEL_NAMES); the widgets take the group as that image.
 CHANNEL_GROUP = "unmix_channel_group"
+# The voxel size in micrometres by axis ({"Z": ..., "Y": ..., "X": ...}) of a layer read from a file
+# that records it: a stack's depths are then in micrometres.
+VOXEL_SIZE = "unmix_voxel_size_um"
 
 
 def matrix_reader(path):
@@ -95,3 +98,16 @@ def demo_layers():
     sample = read_image(inputs["sample"])
     return layers + channel_layers(np.asarray(sample.data), sample.channel_names, "sample",
                                    {"source": str(inputs["sample"])})
+
+
+def demo_stack_layers():
+    """The demo's z-stack (C, Z, Y, X) as one layer per channel, shown in pixels like the demo sample; its
+    voxel size (planes 0.3 µm apart) travels in the metadata, so the Overlap review gives depths in µm."""
+    from unmix.demo import demo_inputs
+    from unmix.io.images import read_image
+
+    path = demo_inputs()["sample_stack"]
+    stack = read_image(path)
+    size = {axis: float(stack.pixel_size[axis]) for axis in "ZYX" if stack.pixel_size.get(axis)}
+    return channel_layers(np.asarray(stack.data), stack.channel_names, "sample stack",
+                          {"source": str(path), VOXEL_SIZE: size})

@@ -136,14 +136,17 @@ class Worker:
         self.busy = False
         self.worker = None
 
-    def start(self, function, on_done, description: str):
+    def start(self, function, on_done, description: str, total: int = 0):
+        """Run `function` in a thread and hand its result to `on_done`. A generator function with a
+        `total` moves the progress bar one step per value it yields (and returns the result); otherwise
+        the bar shows that work goes on."""
         if self.busy:
             show_info("still working on the previous request")
             return
         self.busy = True
         # Handlers given at creation: with its own "errored" handler, the worker does not re-raise
         # into the event loop (the error becomes a notification instead).
-        self.worker = create_worker(function, _progress={"desc": description},
+        self.worker = create_worker(function, _progress={"desc": description, "total": total},
                                     _connect={"returned": on_done, "errored": notify_error, "finished": self._finished})
 
     def _finished(self):
@@ -275,7 +278,7 @@ def layer_image(layer, channel_axis: int = 0):
 
 
 def fill_table(widget: QTableWidget, header, rows, wrap_names: bool = False) -> None:
-    """Fill a read-only table, as tall as its rows (the panel scrolls as a whole). With
+    """Fill a read-only table, exactly as tall as its rows (the panel scrolls as a whole). With
     `wrap_names`, the first column (long names beside short numbers) takes the width the others
     leave and wraps."""
     widget.clear()
@@ -295,8 +298,18 @@ def fill_table(widget: QTableWidget, header, rows, wrap_names: bool = False) -> 
     widget.setWordWrap(wrap_names)
     widget.verticalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
     widget.resizeRowsToContents()
-    widget.setMinimumHeight(columns.sizeHint().height() + widget.verticalHeader().length()
-                            + 2 * widget.frameWidth() + widget.horizontalScrollBar().sizeHint().height())
+    if not widget.property("fits_its_rows"):
+        # When a column's width changes (the dock laid out or resized), wrapped rows change height once
+        # the event is handled: the table then takes their new height, so that it never scrolls inside
+        # the scrolling panel.
+        widget.horizontalHeader().sectionResized.connect(lambda *_: QTimer.singleShot(0, lambda: _fit_height(widget)))
+        widget.setProperty("fits_its_rows", True)
+    _fit_height(widget)
+
+
+def _fit_height(widget: QTableWidget) -> None:
+    widget.setFixedHeight(widget.horizontalHeader().sizeHint().height() + widget.verticalHeader().length()
+                          + 2 * widget.frameWidth() + widget.horizontalScrollBar().sizeHint().height())
 
 
 def chosen_matrix(viewer, choice: QComboBox, path_edit: QLineEdit):

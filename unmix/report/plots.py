@@ -319,7 +319,8 @@ def depth_profile_figure(record: dict):
     axis.xaxis.set_major_locator(MaxNLocator(integer=True))
     axis.set_xlabel("plane")
     axis.set_ylabel("Pearson r")
-    axis.set_title(plain(f"{record['pair'][0]} and {record['pair'][1]} by depth: {record['verdict']}"), fontsize=10)
+    axis.set_title(plain(f"{record['pair'][0]} and {record['pair'][1]} by depth") + f"\n{record['verdict']}",
+                   fontsize=10)
     axis.legend(fontsize=7, loc="best")
     return figure
 
