@@ -1,7 +1,8 @@
 """Reading and writing multichannel images: TIFF, OME-TIFF and OME-Zarr.
 
-Every image is handed around as an :class:`Image`: the pixel array (numpy, or
-dask for lazy reading), its axes in the canonical order ``TCZYX`` (only the
+Every image is handed around as an :class:`Image`: the pixel array (numpy; for lazy
+reading, a dask array, or for TIFF a deferred array that builds its dask array
+only when something beyond its shape or a page-by-page read needs it), its axes in the canonical order ``TCZYX`` (only the
 axes present, ``C``, ``Y`` and ``X`` always), the channel names, the physical
 pixel sizes and where it came from. Readers put the axes into that order, so
 no other module needs to know how a file stored them.
@@ -470,12 +471,7 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
         _check_codec(tif, series, path)
         axes = _tiff_axes(tif, series, axes_override, path)
         if lazy:
-            import dask.array as da
-            import zarr
-
-            # Level 0 of a pyramid: the full resolution, as the eager reader gives.
-            store = series.aszarr(level=0)
-            data = da.from_zarr(zarr.open(store, mode="r"))
+            data = DeferredArray(lambda series=series: _series_dask_array(series), tuple(series.shape), series.dtype)
         else:
             _check_fits_in_memory(n_pixels * np.dtype(series.dtype).itemsize, path)
             data = series.asarray()
@@ -488,6 +484,93 @@ def _tiff_series(tif, path: Path, axes_override: str | None, lazy: bool) -> list
         images.append(Image(data=data, axes=canonical, channel_names=tuple(names), pixel_size=sizes,
                             source=str(path), series=index))
     return images
+
+
+def _series_dask_array(series):
+    import dask.array as da
+    import zarr
+
+    # Level 0 of a pyramid: the full resolution, as the eager reader gives.
+    return da.from_zarr(zarr.open(series.aszarr(level=0), mode="r"))
+
+
+class DeferredArray:
+    """The lazy (dask) array of a TIFF series, built only when its pixels are first wanted.
+
+    Shape and dtype come from the file's metadata, and the axis moves and
+    channel choices made while opening (:func:`to_canonical`,
+    :meth:`Image.select_channels`) are recorded and replayed on the dask array.
+    Readers that take pixels page by page (:func:`read_block`, as ``apply``
+    does) then never import dask and zarr, about 0.6 s of every run. Any other
+    use (indexing beyond whole axes and channel lists, ``np.asarray``, dask
+    methods) builds the dask array and answers from it.
+    """
+
+    def __init__(self, build, shape: tuple, dtype, steps: tuple = ()):
+        self._build, self.shape, self.dtype, self._steps = build, tuple(shape), np.dtype(dtype), steps
+        self._array = None
+        self._lock = threading.Lock()
+
+    @property
+    def ndim(self) -> int:
+        return len(self.shape)
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def transpose(self, order) -> "DeferredArray":
+        order = tuple(int(i) for i in order)
+        return DeferredArray(self._build, tuple(self.shape[i] for i in order), self.dtype,
+                             self._steps + (("transpose", order),))
+
+    def __getitem__(self, key):
+        shape = _whole_axes_shape(self.shape, key)
+        if shape is None:
+            return self.materialised()[key]
+        return DeferredArray(self._build, shape, self.dtype, self._steps + (("index", key),))
+
+    def materialised(self):
+        """The dask array, with the recorded steps applied."""
+        with self._lock:
+            if self._array is None:
+                array = self._build()
+                for step, argument in self._steps:
+                    array = array.transpose(argument) if step == "transpose" else array[argument]
+                self._array = array
+            return self._array
+
+    def __array__(self, dtype=None, copy=None):
+        return np.asarray(self.materialised(), dtype=dtype)
+
+    def __getattr__(self, name):
+        if name.startswith("_"):
+            raise AttributeError(name)
+        return getattr(self.materialised(), name)
+
+    def __repr__(self) -> str:
+        return f"DeferredArray(shape={self.shape}, dtype={self.dtype})"
+
+
+def _whole_axes_shape(shape: tuple, key) -> tuple | None:
+    """The shape of ``array[key]`` for keys of new axes (None), whole axes (``:``) and, on at most
+    one axis, a list of indices; None for any other key (left to the real array)."""
+    key = key if isinstance(key, tuple) else (key,)
+    result, axis, lists = [], 0, 0
+    for item in key:
+        if item is None:
+            result.append(1)
+        elif isinstance(item, slice) and item == slice(None):
+            if axis >= len(shape):
+                return None
+            result.append(shape[axis])
+            axis += 1
+        elif isinstance(item, list) and lists == 0 and axis < len(shape) and all(
+                isinstance(i, (int, np.integer)) and 0 <= i < shape[axis] for i in item):
+            result.append(len(item))
+            axis, lists = axis + 1, 1
+        else:
+            return None
+    return tuple(result) + tuple(shape[axis:])
 
 
 # --- OME-Zarr ---------------------------------------------------------------
