@@ -1,11 +1,12 @@
 """Reading and writing multichannel images: TIFF, OME-TIFF and OME-Zarr.
 
-Every image is handed around as an :class:`Image`: the pixel array (numpy; for lazy
-reading, a dask array, or for TIFF a deferred array that builds its dask array
-only when something beyond its shape or a page-by-page read needs it), its axes in the canonical order ``TCZYX`` (only the
-axes present, ``C``, ``Y`` and ``X`` always), the channel names, the physical
-pixel sizes and where it came from. Readers put the axes into that order, so
-no other module needs to know how a file stored them.
+Every image is handed around as an :class:`Image`: the pixel array (numpy; for
+lazy reading, a dask array, or for TIFF a deferred array that builds its dask
+array only when something beyond its shape or a page-by-page read needs it),
+its axes in the canonical order ``TCZYX`` (only the axes present, ``C``, ``Y``
+and ``X`` always), the channel names, the physical pixel sizes and where it
+came from. Readers put the axes into that order, so no other module needs to
+know how a file stored them.
 
 Axis rules (the command line's contract): axes come from OME or hyperstack
 metadata when the file has them; a file without axis metadata is read as
