@@ -568,6 +568,62 @@ def test_planes_larger_than_the_memory_budget_are_cut_into_strips(tmp_path, demo
                                    rtol=1e-6)
 
 
+@pytest.mark.parametrize("memory", ["1G", "16M"])
+def test_the_mask_is_standard_deflate_chunks_that_zlib_decodes(tmp_path, demo_matrix, capsys, memory):
+    # The mask's chunks are written pre-compressed; each must be a plain zlib stream (TIFF
+    # compression 8, Adobe deflate; TIFF 6.0 supplement) that Python's own zlib module decodes to
+    # the mask's rows, in whole-plane strips (1G) and in padded tiles (16M), including the short
+    # last strip where the saturated rows are.
+    import zlib
+
+    data = np.full((3, 600, 1000), 500, np.uint16)
+    data[1, 590:, 900:] = 4095
+    path = tmp_path / "edge.ome.tif"
+    tifffile.imwrite(path, data, ome=True, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": ["blue450", "green525", "orange600"]}})
+    code, _, err = _run(["apply", "--matrix", demo_matrix, path, "-o", tmp_path / "out", "--memory", memory,
+                         "--quiet"], capsys)
+    assert code == 0, err
+    expected = np.zeros((600, 1000), np.uint8)
+    expected[590:, 900:] = 1
+    with tifffile.TiffFile(tmp_path / "out" / "edge.saturation.ome.tif") as tif:
+        page = tif.pages[0]
+        assert page.compression == 8 and page.is_tiled == (memory == "16M")
+        np.testing.assert_array_equal(page.asarray(), expected)
+        rows = page.tilelength if page.is_tiled else page.rowsperstrip
+        width = page.tilewidth if page.is_tiled else 1000
+        decoded = []
+        for offset, count in zip(page.dataoffsets, page.databytecounts):
+            tif.filehandle.seek(offset)
+            decoded.append(np.frombuffer(zlib.decompress(tif.filehandle.read(count)), np.uint8).reshape(-1, width))
+        np.testing.assert_array_equal(np.concatenate(decoded)[:600, :1000], expected)
+        assert all(len(chunk) == rows for chunk in decoded[:-1])
+
+
+def test_local_batches_hold_a_block_per_core_within_the_budget(monkeypatch):
+    # Local threads: batches of one block per core once blocks are large (so that writing starts
+    # early), more small blocks per batch, never past the memory budget; a cluster gets what the
+    # budget allows. The rule's arithmetic, recomputed here from its definition.
+    import dask.array as da
+
+    from unmix.engine.batch import (_IN_FLIGHT, _LOCAL_BATCH_BYTES, ApplySettings, _blocks_per_batch,
+                                    _bytes_per_pixel)
+    from unmix.io.images import Image
+
+    monkeypatch.setattr(os, "cpu_count", lambda: 2)
+    settings = ApplySettings()
+    per_pixel = _bytes_per_pixel(4, 3, 2, settings)
+    large = Image(da.zeros((4, 1024, 1024), dtype=np.uint16), "CYX", ("a", "b", "c", "d"))
+    small = Image(da.zeros((4, 64, 64), dtype=np.uint16), "CYX", ("a", "b", "c", "d"))
+    budget = settings.memory // (_IN_FLIGHT * per_pixel * 1024 * 1024)
+    assert _blocks_per_batch(large, 1024, 3, settings) == 2
+    assert _blocks_per_batch(large, 1024, 3, settings, local=False) == min(64, budget) > 2
+    small_batch = _blocks_per_batch(small, 64, 3, settings)
+    assert small_batch == min(64, 2 * _LOCAL_BATCH_BYTES // (per_pixel * 64 * 64)) == 64
+    tight = ApplySettings(memory=16 << 20)
+    assert _blocks_per_batch(large, 16, 3, tight) * _IN_FLIGHT * per_pixel * 16 * 1024 <= tight.memory
+
+
 def test_a_huge_plane_is_planned_within_the_budget():
     # 3 x 100000^2 uint16 (60 GB): strips whose pixels in flight stay within the default budget.
     import dask.array as da
@@ -575,7 +631,7 @@ def test_a_huge_plane_is_planned_within_the_budget():
     from unmix.engine.batch import _IN_FLIGHT, ApplySettings, _blocks_per_batch, _bytes_per_pixel, _rows_per_block
     from unmix.io.images import Image
 
-    image = Image(da.zeros((3, 100_000, 100_000), np.uint16, chunks=(1, 1000, 100_000)), "CYX", ("a", "b", "c"))
+    image = Image(da.zeros((3, 100_000, 100_000), dtype=np.uint16, chunks=(1, 1000, 100_000)), "CYX", ("a", "b", "c"))
     settings = ApplySettings()
     rows = _rows_per_block(image, settings, 3)
     batch = _blocks_per_batch(image, rows, 3, settings)

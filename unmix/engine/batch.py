@@ -381,6 +381,7 @@ def _bytes_per_pixel(n_channels: int, n_labels: int, itemsize: int, settings: Ap
 # Copies of a batch alive at once: the one computing, the one being written, and the writer's
 # own copies (converted, padded tiles); measured with tests/benchmarks/bench_memory.py.
 _IN_FLIGHT = 3
+_LOCAL_BATCH_BYTES = 16 << 20  # bytes of a block per core, at least, in a batch on local threads
 
 
 def _rows_per_block(image: Image, settings: ApplySettings, n_labels: int | None = None) -> int:
@@ -395,13 +396,24 @@ def _rows_per_block(image: Image, settings: ApplySettings, n_labels: int | None 
     return int(max(16, rows // 16 * 16))
 
 
-def _blocks_per_batch(image: Image, rows: int, n_labels: int, settings: ApplySettings) -> int:
-    """Blocks computed together: the batches in flight within the budget."""
+def _blocks_per_batch(image: Image, rows: int, n_labels: int, settings: ApplySettings, local: bool = True) -> int:
+    """Blocks computed together, within the memory budget.
+
+    On a cluster, as many as the budget allows, to keep its workers busy. On
+    local threads, one block per core (more when blocks are small, so that a
+    batch's overhead stays small): the writing of a batch then starts soon and
+    overlaps with the computing of the next (measured with
+    tests/benchmarks/bench_apply.py).
+    """
     if settings.batch_blocks is not None:
         return settings.batch_blocks
     per_block = _bytes_per_pixel(image.n_channels, n_labels, np.dtype(image.data.dtype).itemsize,
                                  settings) * rows * image.data.shape[-1]
-    return int(max(1, min(64, settings.memory // (_IN_FLIGHT * per_block))))
+    most = int(max(1, min(64, settings.memory // (_IN_FLIGHT * per_block))))
+    if not local:
+        return most
+    cores = os.cpu_count() or 1
+    return min(most, max(cores, cores * _LOCAL_BATCH_BYTES // per_block))
 
 
 def _block_keys(image: Image, rows: int):
@@ -467,30 +479,30 @@ def _unmix_block(path: str, series: int, axes, channel_names, channels, key, unm
     """Read one block from the file (registered, when a registration is given) and unmix it.
 
     Returns the planes of each member of the output set named in `members` ({name: (n, Y, X)}),
-    the number of NaN pixels and the peak of each channel.
+    the numbers of NaN and of saturated pixels, and the peak of each channel.
     """
     block = _read_registered(path, series, axes, channel_names, channels, key, levels, registration, z_position)
     abundances, errors = unmixer.solve(block, background, errors=_ERRORS in members)
     nan = int(np.count_nonzero(np.isnan(abundances[0])))
     mask, peaks = _mask_and_peaks(block, levels)
     pixels = _BlockPixels(block, abundances, errors, mask, unmixer, background)
-    return {name: _MEMBERS[name].planes(pixels) for name in members}, nan, peaks
+    return {name: _MEMBERS[name].planes(pixels) for name in members}, nan, int(np.count_nonzero(mask)), peaks
 
 
 def _unmix_block_into_zarr(path: str, series: int, axes, channel_names, channels, key, unmixer: Unmixer,
                            background, levels, members: tuple, registration, z_position, destinations: dict):
     """:func:`_unmix_block`, then store the block in its chunk of each output array (distinct
-    chunks: tasks write in parallel); returns only the saturated count in place of the planes."""
+    chunks: tasks write in parallel); returns None in place of the planes."""
     import zarr
 
-    planes, nan, peaks = _unmix_block(path, series, axes, channel_names, channels, key, unmixer, background,
-                                      levels, members, registration, z_position)
+    planes, nan, saturated, peaks = _unmix_block(path, series, axes, channel_names, channels, key, unmixer,
+                                                 background, levels, members, registration, z_position)
     for name, values in planes.items():
         array_path = Path(destinations[name])
         if not (array_path / "zarr.json").exists():
             raise FileNotFoundError(f"{array_path}: output removed while the run was writing it")
         zarr.open_array(str(array_path), mode="r+")[key] = values
-    return int(np.count_nonzero(planes[_MASK])), nan, peaks
+    return None, nan, saturated, peaks
 
 
 def _mask_block(path: str, series: int, axes, channel_names, channels, key, levels, registration=None,
@@ -532,17 +544,58 @@ def _companion_record(name: str, names: dict, identity: dict, counts: dict, leve
 def _early_writeback(planes, handle, every: int = 64 << 20):
     """Pass `planes` through, asking the kernel every `every` bytes to start writing the file
     to disk, so that the final fsync (see :mod:`unmix.io.atomic`) finds little left to do and the
-    disk works while the next blocks are computed."""
-    written = 0
+    disk works while the next blocks are computed.
+
+    The request runs on a thread of its own (the kernel queues the pages for writing there,
+    which takes CPU time), so that the planes keep flowing meanwhile; a request still running
+    when the next is due makes that one unnecessary.
+    """
+    if not hasattr(os, "posix_fadvise"):
+        yield from planes
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    written, pending = 0, None
+    with ThreadPoolExecutor(max_workers=1) as flusher:
+        for plane in planes:
+            yield plane
+            written += plane.nbytes
+            if written >= every and (pending is None or pending.done()):
+                handle.flush()
+                # DONTNEED starts asynchronous write-back of the dirty pages (Linux) and drops
+                # pages already written; it never discards data.
+                pending = flusher.submit(os.posix_fadvise, handle.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
+                written = 0
+    if pending is not None:
+        pending.result()
+
+
+_MASK_STRIP_BYTES = 1 << 18  # uncompressed bytes per strip of a whole-plane mask
+
+
+def _deflate(chunk: np.ndarray) -> bytes:
+    """One TIFF chunk compressed as zlib (the TIFF "Adobe deflate" scheme) at level 1; through
+    zlib-ng when imagecodecs has it: several times faster, and its output is a standard zlib
+    stream that any TIFF reader decodes."""
+    import imagecodecs
+
+    encode = imagecodecs.zlibng_encode if imagecodecs.ZLIBNG.available else imagecodecs.zlib_encode
+    return encode(np.ascontiguousarray(chunk), level=1)
+
+
+def _deflated_chunks(planes, rows: int, tile_width: int | None):
+    """The compressed TIFF chunks of uint8 `planes`, in file order: with `tile_width`, each item
+    holds the rows of one tile, padded with zeros to the tile's shape (`rows`, `tile_width`);
+    else each item is a whole plane, cut into strips of `rows` rows (the last one shorter, as
+    TIFF allows)."""
     for plane in planes:
-        yield plane
-        written += plane.nbytes
-        if written >= every and hasattr(os, "posix_fadvise"):
-            handle.flush()
-            # DONTNEED starts asynchronous write-back of the dirty pages (Linux) and drops
-            # pages already written; it never discards data.
-            os.posix_fadvise(handle.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
-            written = 0
+        if tile_width is None:
+            for y0 in range(0, plane.shape[0], rows):
+                yield _deflate(plane[y0:y0 + rows])
+        else:
+            tile = np.zeros((rows, tile_width), np.uint8)
+            tile[:plane.shape[0], :plane.shape[1]] = plane
+            yield _deflate(tile)
 
 
 @dataclass(frozen=True)
@@ -614,16 +667,12 @@ def _computed_blocks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, un
     source = _task_source(job, path, matrix, settings)
     members = tuple(_wanted(settings))
     task, extra = (_unmix_block, ()) if destinations is None else (_unmix_block_into_zarr, (destinations,))
-    for key, (planes, nan, peaks) in _in_batches(
+    for key, (planes, nan, saturated, peaks) in _in_batches(
             list(_block_keys(job.image, job.rows)), job.batch, task,
             lambda key: (*source, key, unmixer, job.background, job.levels, members, settings.registration,
                          job.z_position, *extra), compute):
-        if destinations is not None:
-            tally.add(nan, planes, peaks)
-            yield key, None
-        else:
-            tally.add(nan, int(np.count_nonzero(planes[_MASK])), peaks)
-            yield key, planes
+        tally.add(nan, saturated, peaks)
+        yield key, planes
 
 
 def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, settings: ApplySettings,
@@ -641,15 +690,12 @@ def _recomputed_masks(job: _SeriesJob, path: Path, matrix: BleedThroughMatrix, s
         yield key, mask
 
 
-class _PlaneSpool:
-    """Planes appended to a scratch file and read back in order, one at a time.
+class _Scratch:
+    """A scratch file beside an output (leased, so that a concurrent run's clean-up spares it),
+    removed on exit."""
 
-    Plain file writes and reads keep memory bounded (a memory map would count
-    every touched page as resident).
-    """
-
-    def __init__(self, path: Path, dtype):
-        self.path, self.dtype = Path(path), np.dtype(dtype)
+    def __init__(self, path: Path):
+        self.path = Path(path)
         self.lease = leased(self.path)
         self.lease.__enter__()
         self.file = open(self.path, "w+b")
@@ -661,6 +707,18 @@ class _PlaneSpool:
         self.file.close()
         self.path.unlink(missing_ok=True)
         self.lease.__exit__(None, None, None)
+
+
+class _PlaneSpool(_Scratch):
+    """Planes appended to a scratch file and read back in order, one at a time.
+
+    Plain file writes and reads keep memory bounded (a memory map would count
+    every touched page as resident).
+    """
+
+    def __init__(self, path: Path, dtype):
+        super().__init__(path)
+        self.dtype = np.dtype(dtype)
 
     def append(self, plane: np.ndarray) -> None:
         self.file.seek(0, os.SEEK_END)
@@ -686,6 +744,25 @@ class _PlaneSpool:
             if plane.size < count:
                 return
             yield plane.reshape(plane_shape)
+
+
+class _ChunkSpool(_Scratch):
+    """Compressed TIFF chunks (bytes of any length) appended to a scratch file and read back in order."""
+
+    def __init__(self, path: Path):
+        super().__init__(path)
+        self.lengths: list[int] = []
+
+    def append(self, chunk: bytes) -> None:
+        self.file.seek(0, os.SEEK_END)
+        self.file.write(chunk)
+        self.lengths.append(len(chunk))
+
+    def chunks(self):
+        self.file.flush()
+        self.file.seek(0)
+        for length in self.lengths:
+            yield self.file.read(length)
 
 
 def _tiff_layout(image: Image, n_channels: int):
@@ -738,7 +815,8 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
     The first member is streamed into its file as blocks are computed; the
     planes of the others are spooled to scratch files beside the outputs and
     written out at the end, so memory stays bounded by a few blocks whatever
-    the size of the stack.
+    the size of the stack. The saturation mask is spooled already compressed
+    (it is mostly zeros).
     """
     import tifffile
 
@@ -750,7 +828,11 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
         with contextlib.closing(_computed_blocks(job, path, matrix, unmixer, settings, compute, tally)) as computed:
             for _, planes in computed:
                 for name in others:
-                    spools[name].append(_padded(planes[name], job.rows) if strips(job) else planes[name])
+                    if name == _MASK:
+                        for chunk in _deflated_chunks(planes[name], *mask_chunking(job)):
+                            spools[name].append(chunk)
+                    else:
+                        spools[name].append(_padded(planes[name], job.rows) if strips(job) else planes[name])
                 yield planes[first]
 
     def strips(job: _SeriesJob) -> bool:
@@ -767,20 +849,32 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
             return {}
         return {"tile": (job.rows, -(-job.image.data.shape[-1] // 16) * 16)}
 
-    def write(writer, name: str, job: _SeriesJob, planes, record: dict) -> None:
+    def mask_chunking(job: _SeriesJob) -> tuple[int, int | None]:
+        """(rows, tile width) of the mask's chunks: its tiles when the planes are cut into
+        strips, else strips of about `_MASK_STRIP_BYTES` (tile width None)."""
+        if strips(job):
+            return tiling(job)["tile"]
+        return max(1, _MASK_STRIP_BYTES // job.image.data.shape[-1]), None
+
+    def write(writer, name: str, job: _SeriesJob, data, record: dict) -> None:
+        """Write one series: `data` is planes or tiles, or for the mask its compressed chunks."""
         member = _MEMBERS[name]
         axes, shape = _tiff_layout(job.image, len(member.channels(matrix)))
-        mask = name == _MASK
-        writer.write(planes, shape=shape, dtype=member.dtype, photometric="minisblack",
-                     # Masks are mostly zeros: the fastest zlib level packs them well.
-                     compression="zlib" if mask else None, compressionargs={"level": 1} if mask else None,
+        layout = tiling(job)
+        if name == _MASK:
+            rows, tile_width = mask_chunking(job)
+            layout = {"compression": "zlib", **({"tile": (rows, tile_width)} if tile_width else {"rowsperstrip": rows})}
+        writer.write(data, shape=shape, dtype=member.dtype, photometric="minisblack",
                      metadata={"axes": axes, "Channel": {"Name": member.channels(matrix)},
                                "Description": json.dumps(record, sort_keys=True), **_physical(job.image)},
-                     **tiling(job))
+                     **layout)
+
+    def spool_for(name: str):
+        scratch_path = temporary_sibling(names[name])
+        return _ChunkSpool(scratch_path) if name == _MASK else _PlaneSpool(scratch_path, _MEMBERS[name].dtype)
 
     with contextlib.ExitStack() as scratch:
-        spools = [{name: scratch.enter_context(_PlaneSpool(temporary_sibling(names[name]), _MEMBERS[name].dtype))
-                   for name in others} for _ in jobs]
+        spools = [{name: scratch.enter_context(spool_for(name)) for name in others} for _ in jobs]
         total_bytes = sum(np.prod(_tiff_layout(job.image, len(matrix.labels))[1], dtype=np.float64) * 4
                           for job in jobs)
         with open(tmp[first], "wb") as handle, \
@@ -792,18 +886,21 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
         for job, spool, tally, series_levels in zip(jobs, spools, tallies, levels):
             if _MASK in spool and np.any(series_levels < job.levels):
                 # The input saturates below the level it was masked at: masks again, before any is written.
-                remasked = scratch.enter_context(_PlaneSpool(temporary_sibling(names[_MASK]), np.uint8))
+                remasked = scratch.enter_context(spool_for(_MASK))
                 for _, mask in _recomputed_masks(job, path, matrix, settings, series_levels, compute, tally):
-                    remasked.append(_padded(mask[None], job.rows) if strips(job) else mask[None])
+                    for chunk in _deflated_chunks(mask[None], *mask_chunking(job)):
+                        remasked.append(chunk)
                 spool[_MASK] = remasked
         counts = _totals(tallies)
         for name in others:
             with tifffile.TiffWriter(tmp[name], ome=True, bigtiff=total_bytes > 2**31) as writer:
                 for job, spool, series_levels in zip(jobs, spools, levels):
-                    n = len(_MEMBERS[name].channels(matrix))
-                    blocks_of_series = spool[name].planes((n, job.rows, job.image.data.shape[-1]))
-                    write(writer, name, job, planes_of(blocks_of_series, job, name),
-                          _companion_record(name, names, identity, counts, series_levels))
+                    if name == _MASK:
+                        data = spool[name].chunks()
+                    else:
+                        n = len(_MEMBERS[name].channels(matrix))
+                        data = planes_of(spool[name].planes((n, job.rows, job.image.data.shape[-1])), job, name)
+                    write(writer, name, job, data, _companion_record(name, names, identity, counts, series_levels))
     return tallies
 
 
@@ -1074,7 +1171,8 @@ def _unmix_file(images: list[Image], matrix, unmixer, matrix_sha, path: Path, na
                                _provisional_levels(matrix, image, settings.saturation),
                                _provenance(matrix, matrix_sha, path, fingerprint, settings, background, image.series,
                                            identity),
-                               rows, _blocks_per_batch(image, rows, len(matrix.labels), settings), z_position))
+                               rows, _blocks_per_batch(image, rows, len(matrix.labels), settings, compute_is_local),
+                               z_position))
     outdir.mkdir(parents=True, exist_ok=True)
     tallies: list = []
 
