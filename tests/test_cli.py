@@ -580,6 +580,8 @@ def test_coloc_histograms_with_long_and_mathematical_label_names(tmp_path, demo,
     (lambda r: r.update(plane_profile=[{"plane": "top"}]), "plane_profile"),
     (lambda r: r.update(plane_profile=[{"plane": 10**12, "pearson_before": 0.1, "pearson_noise_corrected": 0.1,
                                         "interval": None}]), "plane_profile"),
+    (lambda r: r.update(plane_profile=[{"plane": 0, "pearson_before": 0.1, "interval": None}]),
+     "plane_profile"),  # a key missing (found by tests/benchmarks/fuzz_readers.py)
     (lambda r: r.update(planes=[4, 1]), "'planes'"),
     (lambda r: r.update(planes="all"), "'planes'"),
     (lambda r: r.update(z_step_um="0.3 um"), "'z_step_um'"),

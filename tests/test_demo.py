@@ -145,6 +145,14 @@ def test_run_demo_writes_results(tmp_path, capsys):
     assert all(r["planes"] == [0, 7] and len(r["plane_profile"]) == 8 and r["z_step_um"] == pytest.approx(0.3)
                for r in stack)
     assert result["report"].exists()
+    # The one QC flag of the demo, a false non-linearity flag on a linear detector, as the README
+    # describes it (the rate of such flags on linear controls is measured in tests/test_measure.py).
+    from unmix.matrix import load_matrix
+
+    qc = load_matrix(result["matrix"]).qc
+    ratio = [qc[key][2][0] for key in ("linearity_ratio", "linearity_ratio_low", "linearity_ratio_high")]
+    text = f"slope ratio {ratio[0]:.2f}, 95 % interval {ratio[1]:.2f} to {ratio[2]:.2f}"
+    assert ratio[1] > 1 and text in (Path(__file__).parents[1] / "README.md").read_text()
     # Run again into the same folder: the demo replaces its own results.
     assert run_demo(tmp_path / "out")["unmixed"].exists()
 

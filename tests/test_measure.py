@@ -520,3 +520,36 @@ def test_autofluorescence_needs_a_spare_channel():
         measure_matrix({**controls, "D": controls["B"]}, unstained=unstained, autofluorescence="Cellglow")
     with pytest.raises(InputError, match="--autofluorescence Cellglow: needs --unstained"):
         measure_matrix(controls, autofluorescence="Cellglow")
+
+
+def test_a_bad_control_ends_measure_without_hashing_every_input(tmp_path, monkeypatch):
+    # The inputs' checksums are computed beside the measurement; a control that cannot be read
+    # must end the run at once, not after the whole of a large input has been hashed (here an
+    # 8 GiB sparse file). Counted in bytes hashed, not in time.
+    import hashlib
+    import types
+
+    from unmix.io import provenance
+
+    hashed = []
+
+    class Counting:
+        def __init__(self):
+            self.digest = hashlib.sha256()
+
+        def update(self, chunk):
+            hashed.append(len(chunk))
+            self.digest.update(chunk)
+
+        def hexdigest(self):
+            return self.digest.hexdigest()
+
+    monkeypatch.setattr(provenance, "hashlib", types.SimpleNamespace(sha256=Counting))
+    bad = tmp_path / "alpha.tif"
+    bad.write_bytes(b"not an image at all" * 100)
+    big = tmp_path / "beta.tif"
+    with open(big, "wb") as handle:
+        handle.truncate(8 << 30)
+    with pytest.raises(InputError, match="alpha.tif"):
+        measure_files({"alpha": [bad], "beta": [big]})
+    assert sum(hashed) < (8 << 30) // 2

@@ -56,6 +56,11 @@ def _screenshot(viewer, widget, name):
     for _ in range(5):  # let Qt lay the docked widget out before the picture is taken
         QApplication.processEvents()
     viewer.reset_view()
+    # The panel's contents fit its width: they scroll up and down, never sideways.
+    from qtpy.QtWidgets import QScrollArea
+
+    scroll = widget.findChild(QScrollArea)
+    assert not scroll.horizontalScrollBar().isVisible(), f"{name}: contents wider than the panel"
     ARTIFACTS.mkdir(exist_ok=True)
     path = ARTIFACTS / f"napari_{name.lower().replace(' ', '_')}.png"
     viewer.screenshot(str(path), canvas_only=False)

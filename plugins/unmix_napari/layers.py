@@ -17,8 +17,8 @@ from napari.layers import Image as ImageLayer
 from napari.qt.threading import create_worker
 from napari.utils.notifications import show_error, show_info
 from qtpy.QtCore import QSize, Qt, QTimer
-from qtpy.QtWidgets import (QComboBox, QDockWidget, QHeaderView, QLineEdit, QMainWindow, QScrollArea, QTableWidget,
-                            QTableWidgetItem, QVBoxLayout, QWidget)
+from qtpy.QtWidgets import (QComboBox, QDockWidget, QFormLayout, QHeaderView, QLineEdit, QMainWindow, QScrollArea,
+                            QTableWidget, QTableWidgetItem, QVBoxLayout, QWidget)
 
 from .io import CHANNEL_GROUP, CHANNEL_NAMES, MATRIX_METADATA
 
@@ -151,6 +151,14 @@ class Worker:
 
     def _finished(self):
         self.busy = False
+
+
+def form_layout() -> QFormLayout:
+    """A form whose fields go below their labels when the panel is too narrow for both side by
+    side, so that the panel never needs a horizontal scroll bar."""
+    form = QFormLayout()
+    form.setRowWrapPolicy(QFormLayout.RowWrapPolicy.WrapLongRows)
+    return form
 
 
 def narrow(combo: QComboBox) -> QComboBox:

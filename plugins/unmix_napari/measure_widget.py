@@ -7,12 +7,13 @@ import warnings
 import numpy as np
 from napari.layers import Labels as LabelsLayer
 from napari.utils.notifications import show_info
-from qtpy.QtWidgets import (QFileDialog, QFormLayout, QLabel, QLineEdit, QPlainTextEdit, QPushButton, QSpinBox,
+from qtpy.QtWidgets import (QFileDialog, QLabel, QLineEdit, QPlainTextEdit, QPushButton, QSpinBox,
                             QTableWidget, QVBoxLayout)
 
 from unmix.report.summary import matrix_rows
 
-from .layers import LayerChoice, Panel, Worker, fill_table, guarded, layer_image, notify_error, set_matrix
+from .layers import (LayerChoice, Panel, Worker, fill_table, form_layout, guarded, layer_image, notify_error,
+                     set_matrix)
 
 
 class MeasureWidget(Panel):
@@ -34,7 +35,7 @@ class MeasureWidget(Panel):
                        "label are several fields of it)")
         intro.setWordWrap(True)
         layout.addWidget(intro)
-        self.rows_layout = QFormLayout()
+        self.rows_layout = form_layout()
         layout.addLayout(self.rows_layout)
         self.rows = []
         for _ in range(3):
@@ -42,7 +43,7 @@ class MeasureWidget(Panel):
         more = QPushButton("Add a label")
         more.clicked.connect(lambda *_: self.add_row())
         layout.addWidget(more)
-        references = QFormLayout()
+        references = form_layout()
         self.unstained = LayerChoice(napari_viewer, optional=True)
         self.dark = LayerChoice(napari_viewer, optional=True)
         self.bootstrap = QSpinBox()

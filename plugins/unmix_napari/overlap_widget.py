@@ -11,14 +11,14 @@ from __future__ import annotations
 import numpy as np
 from napari.layers import Image as ImageLayer
 from napari.layers import Labels as LabelsLayer
-from qtpy.QtWidgets import QComboBox, QFormLayout, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout
+from qtpy.QtWidgets import QComboBox, QLabel, QPushButton, QSpinBox, QTableWidget, QVBoxLayout
 
 from unmix.coloc import ROUNDS
 from unmix.report.style import VERDICT_LOOK
 
 from .io import VOXEL_SIZE
-from .layers import (NONE, ChannelGroup, LayerChoice, Panel, Worker, default_image, fill_table, guarded, layer_image,
-                     narrow, session)
+from .layers import (NONE, ChannelGroup, LayerChoice, Panel, Worker, default_image, fill_table, form_layout, guarded,
+                     layer_image, narrow, session)
 
 DEPTH, TIME = "depth (z-planes)", "time (time points)"
 
@@ -35,7 +35,7 @@ class OverlapWidget(Panel):
         self.results = []  # a series: the PairResult of each time point
         self._watched = None
         layout = QVBoxLayout(self.body)
-        form = QFormLayout()
+        form = form_layout()
         self.form = form
         self.label_a, self.label_b = narrow(QComboBox()), narrow(QComboBox())
         self.raw = LayerChoice(napari_viewer, prefer=lambda: default_image(self.viewer))

@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 import numpy as np
-from qtpy.QtWidgets import (QCheckBox, QComboBox, QFileDialog, QFormLayout, QHBoxLayout, QLabel, QLineEdit,
+from qtpy.QtWidgets import (QCheckBox, QComboBox, QFileDialog, QHBoxLayout, QLabel, QLineEdit,
                             QPushButton, QSpinBox)
 
 from unmix.report.style import label_colour
 
 from .io import CHANNEL_NAMES
-from .layers import (LayerChoice, Panel, Worker, chosen_matrix, default_image, guarded, layer_image,
+from .layers import (LayerChoice, Panel, Worker, chosen_matrix, default_image, form_layout, guarded, layer_image,
                      refresh_matrix_sources, session, set_matrix)
 
 
@@ -21,7 +21,8 @@ class UnmixWidget(Panel):
         super().__init__()
         self.viewer = napari_viewer
         self.runner = Worker()
-        layout = QFormLayout(self.body)
+        layout = form_layout()
+        self.body.setLayout(layout)
         self.image = LayerChoice(napari_viewer, prefer=lambda: default_image(self.viewer))
         self.channel_axis = QSpinBox()
         self.channel_axis.setRange(0, 5)

@@ -71,16 +71,29 @@ def restructured(original: bytes, rng: random.Random) -> bytes:
     return json.dumps(document).replace('"\\u0000deep"', "[" * 5000 + "]" * 5000).encode()
 
 
-def coloc_seed(folder: Path, matrix: Path) -> Path:
-    """A coloc results file as `unmix coloc --json` writes it, from the shipped demo sample."""
+def coloc_seeds(folder: Path, matrix: Path) -> dict:
+    """Coloc results files as `unmix coloc --json` writes them, by kind: a 2-D image (the shipped
+    demo sample), a z-stack (the demo stack, judged in 3-D) and a short time series made here
+    from the demo sample (four frames, the labels fading), whose file also holds its summary."""
+    import numpy as np
+
     from unmix.cli import main as cli
     from unmix.demo import demo_inputs
+    from unmix.io.images import Image, read_image, write_ome_tiff
 
-    path = folder / "c.json"
-    code = cli(["coloc", str(demo_inputs()["sample"]), "--matrix", str(matrix), "--labels", "Pondpetal,Emberin",
-                "--labels", "Fernlight,Emberin", "--rounds", "19", "--json", str(path), "--quiet"])
-    assert code == 0
-    return path
+    inputs = demo_inputs()
+    sample = read_image(inputs["sample"])
+    frames = np.stack([sample.data.astype(np.float32) * 0.9**t for t in range(4)])
+    series = folder / "series.ome.tif"
+    write_ome_tiff(series, Image(frames, "T" + sample.axes, sample.channel_names, sample.pixel_size))
+    seeds = {}
+    for kind, image in (("coloc", inputs["sample"]), ("coloc-stack", inputs["sample_stack"]), ("coloc-time", series)):
+        path = folder / f"{kind}.json"
+        code = cli(["coloc", str(image), "--matrix", str(matrix), "--labels", "Pondpetal,Emberin",
+                    "--labels", "Fernlight,Emberin", "--rounds", "19", "--json", str(path), "--quiet"])
+        assert code == 0, kind
+        seeds[kind] = path
+    return seeds
 
 
 def read_coloc(matrix: Path, path: Path):
@@ -103,17 +116,17 @@ def main():
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         seeds = _seed_files(folder)
-        seeds["coloc"] = coloc_seed(folder, seeds["matrix"])
+        seeds.update(coloc_seeds(folder, seeds["matrix"]))
         originals = {kind: Path(path).read_bytes() for kind, path in seeds.items()}
         for kind, path in seeds.items():
             target = folder / f"fuzz_{Path(path).name}"
             counts = {"accepted": 0, "refused": 0, "crashed": 0}
             for example in range(args.examples):
-                structural = kind in ("coloc", "matrix") and example % 2 == 1
+                structural = (kind == "matrix" or kind.startswith("coloc")) and example % 2 == 1
                 target.write_bytes(restructured(originals[kind], rng) if structural
                                    else mutated(originals[kind], rng))
                 try:
-                    if kind == "coloc":
+                    if kind.startswith("coloc"):
                         read_coloc(seeds["matrix"], target)
                     else:
                         read_with(kind, target)
@@ -133,8 +146,8 @@ def main():
             "description": lambda p: ["predict", "--config", str(p), "-o", str(folder / "p.json")],
             "image": lambda p: ["apply", "--matrix", str(seeds["matrix"]), str(p), "-o", str(folder / "out"),
                                 "--overwrite"],
-            "coloc": lambda p: ["report", "--matrix", str(seeds["matrix"]), "--coloc", str(p), "-o",
-                                str(folder / "r.html")],
+            **{kind: lambda p: ["report", "--matrix", str(seeds["matrix"]), "--coloc", str(p), "-o",
+                                str(folder / "r.html")] for kind in ("coloc", "coloc-stack", "coloc-time")},
         }
         codes = {"0": 0, "2": 0, "other": 0, "traceback": 0}
         for run in range(args.cli_runs):

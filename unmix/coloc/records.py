@@ -66,6 +66,9 @@ def _series_of(value, length: int, check) -> bool:
     return isinstance(value, list) and len(value) == length and all(check(v) for v in value)
 
 
+_PLANE_KEYS = ("plane", "pearson_before", "pearson_noise_corrected", "interval")  # of each plane_profile entry
+
+
 def _check_side(side, name: str, where: str) -> None:
     if not isinstance(side, dict) or not side:
         raise InputError(f"{where}: '{name}' must be an object of coefficients; give the file written by unmix coloc")
@@ -118,9 +121,9 @@ def check_record(record, where: str) -> dict:
     profile = record.get("plane_profile")
     if profile is not None:
         if not isinstance(profile, list) or not all(
-                isinstance(p, dict) and _index(p.get("plane")) and _number_or_null(p.get("pearson_before"))
-                and _number_or_null(p.get("pearson_noise_corrected")) and _pair_of_numbers(p.get("interval"))
-                for p in profile):
+                isinstance(p, dict) and all(key in p for key in _PLANE_KEYS) and _index(p["plane"])
+                and _number_or_null(p["pearson_before"]) and _number_or_null(p["pearson_noise_corrected"])
+                and _pair_of_numbers(p["interval"]) for p in profile):
             raise InputError(f"{where}: 'plane_profile' must be a list of planes with their r's; give the file "
                              "written by unmix coloc --json")
     for key in ("depth_trend", "after_nonnegative"):

@@ -208,6 +208,7 @@ class Unmixer:
         when `warn`)."""
         from .uncertainty import error_sources
 
+        # Before error_sources, which inverts the matrix: a refused matrix must fail with its own message.
         matrix.check_unmixable(warn=False)
         noise, covariance, _ = error_sources(matrix, weights, uncertainty, warn=warn)
         return cls(matrix.matrix, method=method, labels=matrix.labels, noise=noise, column_covariance=covariance,

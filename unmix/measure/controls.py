@@ -1123,19 +1123,27 @@ def measure_files(controls: Mapping[str, Sequence], *, unstained=None, dark=None
         if not Path(path).exists():
             raise InputError(f"{path}: no such file; check the path")
 
+    import threading
     from concurrent.futures import ThreadPoolExecutor
 
     # Checksums are computed in a background thread while measuring (hashlib
     # releases the GIL), so that the second core can take that work.
+    stop = threading.Event()
     with ThreadPoolExecutor(max_workers=1) as pool:
-        described = [pool.submit(prov.describe_input, path, "control" if role in controls else role,
+        described = [pool.submit(prov.describe_input, path, "control" if role in controls else role, stop,
                                  **({"label": role} if role in controls else {})) for role, path in all_paths]
-        matrix = measure_matrix(
-            controls, unstained=unstained, dark=dark, saturation=saturation, primary=primary,
-            allow_nonfinite=allow_nonfinite, settings=settings, axes=axes, channel_names=channel_names,
-            registration=registration, autofluorescence=autofluorescence,
-            autofluorescence_mask=autofluorescence_mask,
-        )
+        try:
+            matrix = measure_matrix(
+                controls, unstained=unstained, dark=dark, saturation=saturation, primary=primary,
+                allow_nonfinite=allow_nonfinite, settings=settings, axes=axes, channel_names=channel_names,
+                registration=registration, autofluorescence=autofluorescence,
+                autofluorescence_mask=autofluorescence_mask,
+            )
+        except BaseException:
+            # A bad input ends the run now, not after the checksums of every (possibly huge) input.
+            stop.set()
+            pool.shutdown(wait=True, cancel_futures=True)
+            raise
         entries = [future.result() for future in described]
     from ..io.acquisition import combine_settings
 

@@ -297,7 +297,7 @@ def depth_profile_figure(record: dict):
     from matplotlib.ticker import MaxNLocator
 
     profile = record.get("plane_profile") or []
-    figure, axis = plt.subplots(figsize=(6.4, 3.4), layout="constrained")
+    figure, axis = plt.subplots(figsize=(8.0, 3.4), layout="constrained")
     first = (record.get("planes") or [0])[0]
     planes = [first + p["plane"] for p in profile]
     corrected = [np.nan if p["pearson_noise_corrected"] is None else p["pearson_noise_corrected"] for p in profile]
@@ -321,7 +321,8 @@ def depth_profile_figure(record: dict):
     axis.set_ylabel("Pearson r")
     axis.set_title(plain(f"{record['pair'][0]} and {record['pair'][1]} by depth") + f"\n{record['verdict']}",
                    fontsize=10)
-    axis.legend(fontsize=7, loc="best")
+    # Beside the axes, never over a plane's points.
+    axis.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.01, 1.0), borderaxespad=0)
     return figure
 
 
