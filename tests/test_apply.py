@@ -624,6 +624,26 @@ def test_local_batches_hold_a_block_per_core_within_the_budget(monkeypatch):
     assert _blocks_per_batch(large, 16, 3, tight) * _IN_FLIGHT * per_pixel * 16 * 1024 <= tight.memory
 
 
+def test_write_back_hints_pass_the_planes_through_and_a_refusal_changes_nothing(tmp_path, monkeypatch):
+    # posix_fadvise is a hint (POSIX.1-2001): a file system that refuses it must not fail the run.
+    from unmix.engine.batch import _early_writeback
+
+    if not hasattr(os, "posix_fadvise"):
+        pytest.skip("no posix_fadvise on this system")
+    advised = []
+
+    def refuse(fd, offset, length, advice):
+        advised.append(advice)
+        raise OSError(22, "refused")
+
+    monkeypatch.setattr(os, "posix_fadvise", refuse)
+    planes = [np.full((64, 64), i, np.float32) for i in range(10)]  # 16 KiB each
+    with open(tmp_path / "out.raw", "wb") as handle:
+        passed = list(_early_writeback(iter(planes), handle, every=32 << 10))
+    assert len(passed) == 10 and all(a is b for a, b in zip(passed, planes))
+    assert advised and set(advised) == {os.POSIX_FADV_DONTNEED}
+
+
 def test_a_huge_plane_is_planned_within_the_budget():
     # 3 x 100000^2 uint16 (60 GB): strips whose pixels in flight stay within the default budget.
     import dask.array as da

@@ -146,7 +146,8 @@ def test_run_demo_writes_results(tmp_path, capsys):
                for r in stack)
     assert result["report"].exists()
     # The one QC flag of the demo, a false non-linearity flag on a linear detector, as the README
-    # describes it (the rate of such flags on linear controls is measured in tests/test_measure.py).
+    # describes it (the rate of such flags on linear controls: tests/test_measure.py, and on controls like
+    # these, tests/benchmarks/bench_linearity_specimen.py).
     from unmix.matrix import load_matrix
 
     qc = load_matrix(result["matrix"]).qc

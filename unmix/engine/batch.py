@@ -562,12 +562,15 @@ def _early_writeback(planes, handle, every: int = 64 << 20):
             written += plane.nbytes
             if written >= every and (pending is None or pending.done()):
                 handle.flush()
-                # DONTNEED starts asynchronous write-back of the dirty pages (Linux) and drops
-                # pages already written; it never discards data.
-                pending = flusher.submit(os.posix_fadvise, handle.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
+                pending = flusher.submit(_start_writeback, handle.fileno())
                 written = 0
-    if pending is not None:
-        pending.result()
+
+
+def _start_writeback(fd: int) -> None:
+    # DONTNEED starts asynchronous write-back of the dirty pages (Linux) and drops pages already
+    # written; it never discards data. A hint: a file system that refuses it changes nothing.
+    with contextlib.suppress(OSError):
+        os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
 
 
 _MASK_STRIP_BYTES = 1 << 18  # uncompressed bytes per strip of a whole-plane mask
