@@ -756,10 +756,11 @@ class _ChunkSpool(_Scratch):
         super().__init__(path)
         self.lengths: list[int] = []
 
-    def append(self, chunk: bytes) -> None:
+    def extend(self, chunks) -> None:
         self.file.seek(0, os.SEEK_END)
-        self.file.write(chunk)
-        self.lengths.append(len(chunk))
+        for chunk in chunks:
+            self.file.write(chunk)
+            self.lengths.append(len(chunk))
 
     def chunks(self):
         self.file.flush()
@@ -832,8 +833,7 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
             for _, planes in computed:
                 for name in others:
                     if name == _MASK:
-                        for chunk in _deflated_chunks(planes[name], *mask_chunking(job)):
-                            spools[name].append(chunk)
+                        spools[name].extend(_deflated_chunks(planes[name], *mask_chunking(job)))
                     else:
                         spools[name].append(_padded(planes[name], job.rows) if strips(job) else planes[name])
                 yield planes[first]
@@ -891,8 +891,7 @@ def _write_outputs(jobs: list[_SeriesJob], matrix: BleedThroughMatrix, unmixer: 
                 # The input saturates below the level it was masked at: masks again, before any is written.
                 remasked = scratch.enter_context(spool_for(_MASK))
                 for _, mask in _recomputed_masks(job, path, matrix, settings, series_levels, compute, tally):
-                    for chunk in _deflated_chunks(mask[None], *mask_chunking(job)):
-                        remasked.append(chunk)
+                    remasked.extend(_deflated_chunks(mask[None], *mask_chunking(job)))
                 spool[_MASK] = remasked
         counts = _totals(tallies)
         for name in others:
